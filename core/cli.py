@@ -1,2 +1,215 @@
-def main():
-    print("hello")
+"""The ``kinemark`` command: argument parsing only; the work is in ``ops``.
+
+User errors print one line and exit 2. Nothing prints a traceback unless
+``--debug`` is given.
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from .errors import KinemarkError
+
+CAUTION = ("Kinemark labels and model output are research data, not a diagnosis. The study's protocol, "
+           "its ethics approval and local privacy law come first.")
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):
+        raise KinemarkError(f"{self.prog}: {message} (see '{self.prog} --help')")
+
+
+class ProgressBar:
+    """A one-line text progress bar on stderr (silent when stderr is not a terminal, unless forced)."""
+
+    def __init__(self, stream=None, force: bool = False):
+        self.stream = stream or sys.stderr
+        self.enabled = force or self.stream.isatty()
+        self._last = None
+
+    def __call__(self, done: int, total: int, message: str = ""):
+        if not self.enabled:
+            return
+        total = max(total, 1)
+        frac = min(done / total, 1.0)
+        line = f"\r[{'#' * int(frac * 30):<30}] {done}/{total} {message[:40]:<40}"
+        if line != self._last:
+            self.stream.write(line)
+            self.stream.flush()
+            self._last = line
+        if done >= total:
+            self.stream.write("\n")
+            self._last = None
+
+
+def _open(path):
+    from .project import Project
+    return Project.open(path)
+
+
+def cmd_new(a):
+    from . import ops
+    from .skeleton import load_skeleton
+    skel = load_skeleton(a.skeleton)
+    with ops.new_project(a.dir, skel, owner=a.user, media_root=a.media_root) as p:
+        print(f"created project {p.root} with skeleton {skel.name} ({skel.num_keypoints} keypoints); "
+              f"owner {p.user().name}")
+    print(CAUTION)
+
+
+def cmd_add(a):
+    from . import ops
+    from .media import Sampling
+    sampling = Sampling(every=a.every, seconds=a.seconds, count=a.count)
+    if a.every is None and a.seconds is None and a.count is None:
+        sampling = Sampling(every=1)
+    with _open(a.dir) as p:
+        changes, rep = ops.add_media(p, [Path(f) for f in a.files], participant=a.participant,
+                                     session=a.session, sampling=sampling, user=a.user,
+                                     progress=ProgressBar(), strict=not a.keep_going)
+        for path, mid, n in rep.added:
+            print(f"added {path} as media {mid}: {n} frames ({sampling.describe()})")
+        for path, other in rep.duplicates:
+            print(f"skipped {path}: already in the project as {other} (same checksum)")
+        if rep.skipped:
+            print(f"skipped {len(rep.skipped)} file(s) that are neither images nor videos")
+        for path, msg in rep.failed:
+            print(f"failed: {msg}")
+        print(changes.message)
+        if rep.failed:
+            return 2
+
+
+def cmd_info(a):
+    from . import ops
+    with _open(a.dir) as p:
+        d = ops.info(p)
+    print(f"project   {d['root']}")
+    print(f"skeleton  {d['skeleton']} ({d['keypoints']} keypoints), schema v{d['schema_version']}")
+    print(f"media     {d['media']}   frames {d['frames']}")
+    print("states    " + "  ".join(f"{k} {v}" for k, v in d["states"].items()))
+    print("by participant (media, frames, accepted):")
+    for code, m, f, acc in d["participants"]:
+        print(f"  {code:<12} {m:>5} {f:>7} {acc:>7}")
+    for path in d["changed_media"]:
+        print(f"CHANGED ON DISK (relink needed): {path}")
+
+
+def cmd_export(a):
+    from . import ops
+    with _open(a.dir) as p:
+        ch = ops.export_coco(p, a.out, states=a.states, fmt=a.format, images_to=a.images_to,
+                             progress=ProgressBar())
+    print(ch.message)
+
+
+def cmd_import(a):
+    from . import ops
+    with _open(a.dir) as p:
+        ch, plan = ops.import_coco(p, a.file, a.images, policy=a.on_problem, state=a.as_state,
+                                   participant=a.participant, user=a.user, progress=ProgressBar())
+    for prob in plan.problems:
+        print(f"skipped {prob}")
+    for note in plan.notices:
+        print(f"ignored {note}")
+    print(ch.message)
+
+
+def cmd_relink(a):
+    from . import ops
+    with _open(a.dir) as p:
+        print(ops.relink(p, a.media, a.path, user=a.user).message)
+
+
+def cmd_bench(a):
+    from . import bench
+    bench.run(a.what, a)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    from .model import ACCEPTED, IN_REVIEW, STATES
+    ap = _Parser(prog="kinemark", description="Keypoint labelling for clinical movement research. " + CAUTION)
+    ap.add_argument("--debug", action="store_true", help="show tracebacks")
+    ap.add_argument("--user", help="who is working (default: the project's default user, or $KINEMARK_USER)")
+    sub = ap.add_subparsers(dest="cmd", required=True, parser_class=_Parser)
+
+    s = sub.add_parser("new", help="create a project folder")
+    s.add_argument("dir")
+    s.add_argument("--skeleton", default="coco17", help="coco17 (built in) or a skeleton JSON file")
+    s.add_argument("--media-root", help="a shared folder that media paths are stored relative to")
+    s.set_defaults(fn=cmd_new)
+
+    s = sub.add_parser("add", help="add videos, image folders or images")
+    s.add_argument("dir")
+    s.add_argument("files", nargs="+")
+    s.add_argument("--participant", help="pseudonymous participant code, e.g. QB-01")
+    s.add_argument("--session", type=int, help="session number (default 1)")
+    g = s.add_mutually_exclusive_group()
+    g.add_argument("--every", type=int, help="keep every Nth frame")
+    g.add_argument("--seconds", type=float, help="keep a frame every T seconds")
+    g.add_argument("--count", type=int, help="keep K evenly spaced frames")
+    s.add_argument("--keep-going", action="store_true", help="report unreadable files and go on with the rest")
+    s.set_defaults(fn=cmd_add)
+
+    s = sub.add_parser("info", help="counts by state and by participant")
+    s.add_argument("dir")
+    s.set_defaults(fn=cmd_info)
+
+    s = sub.add_parser("export", help="write COCO keypoints (accepted labels by default)")
+    s.add_argument("dir")
+    s.add_argument("out")
+    s.add_argument("--states", nargs="+", default=[ACCEPTED], choices=STATES)
+    s.add_argument("--format", default="coco", choices=["coco", "coco-results"])
+    s.add_argument("--images-to", help="also write the frames as PNG files into this folder")
+    s.set_defaults(fn=cmd_export)
+
+    s = sub.add_parser("import-coco", help="import a COCO keypoints file")
+    s.add_argument("dir")
+    s.add_argument("file")
+    s.add_argument("--images", required=True, help="folder the file_name entries are relative to")
+    s.add_argument("--on-problem", default="refuse", choices=["refuse", "skip"],
+                   help="refuse the whole file (default) or skip bad records")
+    s.add_argument("--as-state", default=IN_REVIEW, choices=STATES,
+                   help=f"state of imported labels (default {IN_REVIEW}: a reviewer checks them)")
+    s.add_argument("--participant", help="participant code for the imported images")
+    s.set_defaults(fn=cmd_import)
+
+    s = sub.add_parser("relink", help="accept a changed or moved media file after checking its frames")
+    s.add_argument("dir")
+    s.add_argument("media", type=int, help="media id (see 'kinemark info')")
+    s.add_argument("path", nargs="?", help="new location of the file")
+    s.set_defaults(fn=cmd_relink)
+
+    s = sub.add_parser("bench", help="measure speed and memory; prints figures")
+    s.add_argument("what", choices=["export", "open", "all"])
+    s.add_argument("--frames", type=int, default=None, help="override the benchmark size")
+    s.set_defaults(fn=cmd_bench)
+    return ap
+
+
+def main(argv=None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    debug = "--debug" in argv
+    try:
+        args = build_parser().parse_args(argv)
+        rc = args.fn(args)
+        return int(rc or 0)
+    except KinemarkError as e:
+        if debug:
+            raise
+        print(f"kinemark: error: {e}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("kinemark: interrupted", file=sys.stderr)
+        return 130
+    except Exception as e:  # a bug: say so in one line unless --debug
+        if debug:
+            raise
+        print(f"kinemark: internal error ({type(e).__name__}: {e}); run again with --debug "
+              f"for the traceback and report it", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

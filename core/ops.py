@@ -1,0 +1,329 @@
+"""User-level operations. The CLI and the GUI both call these.
+
+Each mutating operation returns a :class:`~kinemark.core.model.Changes`
+record saying what changed, so a front end can refresh just that. Long
+operations take ``progress(done, total, message)``; they raise
+:class:`KinemarkError` for anything the user can fix.
+"""
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterable
+
+import cv2
+
+from . import coco
+from .errors import KinemarkError
+from .media import (Probe, Sampling, list_image_folder, media_kind, probe_image, probe_video,
+                    file_sha256)
+from .model import ACCEPTED, IN_REVIEW, STATES, Changes
+from .project import Project
+from .skeleton import Skeleton
+
+Progress = object  # callable(done, total, message) or None
+
+
+def _tick(progress, done, total, message):
+    if progress is not None:
+        progress(done, total, message)
+
+
+# ---- project ------------------------------------------------------------------------
+
+def new_project(root, skeleton: Skeleton, *, owner: str | None = None,
+                media_root: str | None = None) -> Project:
+    return Project.create(root, skeleton, owner=owner, media_root=media_root)
+
+
+# ---- media --------------------------------------------------------------------------
+
+@dataclass
+class AddReport:
+    added: list            # (path, media id, frames)
+    duplicates: list       # (path, existing media path)
+    skipped: list          # (path, reason) non-media files in folders
+    failed: list           # (path, message) files that could not be imported
+
+
+def _expand(paths: Iterable[Path]) -> tuple[list[Path], list]:
+    files, skipped = [], []
+    for p in paths:
+        p = Path(p)
+        if p.is_dir():
+            imgs, other = list_image_folder(p)
+            vids = [o for o in other if media_kind(o) == "video"]
+            if not imgs and not vids:
+                raise KinemarkError("the folder holds no images or videos", where=str(p))
+            files.extend(imgs + vids)
+            skipped.extend((o, "not an image or video") for o in other if media_kind(o) is None)
+        else:
+            files.append(p)
+    return files, skipped
+
+
+def add_media(project: Project, paths: Iterable, *, participant: str | None = None,
+              session: int | None = None, sampling: Sampling = Sampling(), user: str | None = None,
+              progress=None, strict: bool = True) -> tuple[Changes, AddReport]:
+    """Import videos, image folders or single images.
+
+    With ``strict`` a file that cannot be read stops the whole call with its
+    message before anything is written for it; otherwise it is reported in
+    ``AddReport.failed`` and the others go on. Each media is its own
+    transaction: a failure never leaves a half-imported file behind.
+    """
+    who = project.user(user)
+    files, skipped = _expand(paths)
+    if not files and not skipped:
+        raise KinemarkError("nothing to add")
+    if session is not None and not participant:
+        raise KinemarkError("--session needs --participant")
+    report = AddReport([], [], skipped, [])
+    # Phase 1: read and check every file; nothing is written yet.
+    probed = []
+    seen_sha = {}
+    for n, path in enumerate(files):
+        _tick(progress, n, len(files), f"reading {path.name}")
+        try:
+            kind = media_kind(path)
+            if kind is None:
+                raise KinemarkError(f"unsupported file type {path.suffix or '(none)'!r}; videos: "
+                                    "mp4, mov, avi, mkv ...; images: png, jpg, tif ...", where=str(path))
+            probe: Probe = probe_image(path) if kind == "image" else probe_video(path, sampling)
+            sha = file_sha256(path)
+            dup = project.store.media_by_sha(sha)
+            if dup is not None or sha in seen_sha:
+                report.duplicates.append((path, dup.path if dup else str(seen_sha[sha])))
+                continue
+            seen_sha[sha] = path
+            probed.append((path, kind, sha, probe))
+        except KinemarkError as e:
+            if strict:
+                raise
+            report.failed.append((path, str(e)))
+    # Phase 2: write them all in one transaction.
+    media_ids, frame_ids = [], []
+    with project.store.tx():
+        session_id = None
+        if participant and probed:
+            p = project.store.participant(participant, create=True, user_id=who.id)
+            session_id = project.store.session(p.id, session or 1, create=True, user_id=who.id).id
+        for path, kind, sha, probe in probed:
+            stored, base = project.stored_path(path)
+            frames = [(i, (i / probe.fps) if probe.fps else None, probe.checksums[i])
+                      for i in sorted(probe.checksums)]
+            media, fids = project.store.add_media(
+                session_id=session_id, kind=kind, path=stored, path_base=base, sha256=sha,
+                fps=probe.fps, frame_count=probe.frame_count, width=probe.width, height=probe.height,
+                frames=frames, user_id=who.id)
+            media_ids.append(media.id)
+            frame_ids.extend(fids)
+            report.added.append((path, media.id, len(fids)))
+    _tick(progress, len(files), len(files), "done")
+    msg = f"added {len(report.added)} media ({len(frame_ids)} frames)"
+    if report.duplicates:
+        msg += f", {len(report.duplicates)} already in the project"
+    if report.skipped:
+        msg += f", skipped {len(report.skipped)} non-media file(s)"
+    if report.failed:
+        msg += f", {len(report.failed)} failed"
+    return Changes(media=tuple(media_ids), frames=tuple(frame_ids), message=msg), report
+
+
+def relink(project: Project, media_id: int, new_path: str | Path | None = None, *,
+           user: str | None = None) -> Changes:
+    """Accept the file now on disk (or at ``new_path``) for a media, re-checking every frame.
+
+    Refused if the new file no longer has the sampled frames.
+    """
+    who = project.user(user)
+    media = project.store.media(media_id)
+    path = Path(new_path) if new_path else project.media_path(media)
+    if not path.exists():
+        raise KinemarkError("file not found", where=str(path))
+    frames = project.store.frames(media_id)
+    if media.kind == "image":
+        probe = probe_image(path)
+    else:
+        probe = probe_video(path, Sampling(every=1))
+    shas = {}
+    for f in frames:
+        if f.frame_index not in probe.checksums:
+            raise KinemarkError(f"the new file has no frame {f.frame_index}; it cannot replace this media",
+                                where=str(path))
+        shas[f.frame_index] = probe.checksums[f.frame_index]
+    stored, base = project.stored_path(path)
+    with project.store.tx():
+        project.store.update_frame_checksums(media_id, shas, user_id=who.id)
+        project.store.set_media_status(media_id, "ok", sha256=file_sha256(path), path=stored,
+                                       path_base=base, user_id=who.id)
+    src = project._sources.pop(media_id, None)
+    if src:
+        src.close()
+    changed = sum(1 for f in frames if shas[f.frame_index] != f.pixel_sha)
+    return Changes(media=(media_id,), frames=tuple(f.id for f in frames),
+                   message=f"relinked media {media_id}; {changed} of {len(frames)} frames' pixels changed")
+
+
+# ---- summary ------------------------------------------------------------------------
+
+def info(project: Project) -> dict:
+    s = project.store
+    return {
+        "root": str(project.root),
+        "skeleton": project.skeleton.name,
+        "keypoints": project.skeleton.num_keypoints,
+        "media": len(s.all_media()),
+        "frames": s.frame_count(),
+        "states": s.state_counts(),
+        "participants": s.counts_by_participant(),
+        "changed_media": [m.path for m in s.all_media() if m.status == "changed"],
+        "schema_version": s.version(),
+    }
+
+
+# ---- export -------------------------------------------------------------------------
+
+def _check_states(states):
+    states = list(states)
+    bad = [x for x in states if x not in STATES]
+    if bad:
+        raise KinemarkError(f"unknown state(s) {', '.join(bad)}; states are {', '.join(STATES)}")
+    return states
+
+
+def _write_private(path: Path, text: str):
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd = os.open(str(path), os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+    with os.fdopen(fd, "w", encoding="utf-8") as f:
+        f.write(text)
+
+
+def export_coco(project: Project, out: str | Path, *, states=(ACCEPTED,), fmt: str = "coco",
+                images_to: str | Path | None = None, progress=None,
+                date_created: str | None = None) -> Changes:
+    """Write a COCO keypoints file (``fmt='coco'``) or a COCO results file (``'coco-results'``).
+
+    Results are the stored model proposals for frames in ``states`` (or all
+    proposed frames when ``states`` is empty), for scoring with the reference evaluator.
+    """
+    out = Path(out)
+    states = _check_states(states)
+    if fmt == "coco":
+        rows = project.store.export_rows(states)
+        data = coco.build_coco(rows, project.skeleton, date_created=date_created)
+        if images_to is not None:
+            images_to = Path(images_to)
+            images_to.mkdir(parents=True, exist_ok=True)
+            done = set()
+            for n, r in enumerate(rows):
+                frame_id, media_id, frame_index = r[1], r[6], r[7]
+                if frame_id in done:
+                    continue
+                done.add(frame_id)
+                img = project.read_frame(media_id, frame_index)
+                target = images_to / coco.frame_file_name(media_id, frame_index)
+                if not cv2.imwrite(str(target), img):
+                    raise KinemarkError("cannot write image", where=str(target))
+                os.chmod(target, 0o600)
+                _tick(progress, n + 1, len(rows), "writing frames")
+        _write_private(out, json.dumps(data))
+        msg = f"wrote {len(data['annotations'])} annotations on {len(data['images'])} images to {out}"
+    elif fmt == "coco-results":
+        wanted = None
+        if states:
+            wanted = {r[1] for r in project.store.export_rows(states)}
+        results = [coco.results_entry(p.frame_id, p.keypoints, p.score)
+                   for p in project.store.proposals() if wanted is None or p.frame_id in wanted]
+        _write_private(out, json.dumps(results))
+        msg = f"wrote {len(results)} model results to {out}"
+    else:
+        raise KinemarkError(f"unknown export format {fmt!r}; use coco or coco-results")
+    return Changes(message=msg, details={"path": str(out)})
+
+
+# ---- import -------------------------------------------------------------------------
+
+IMPORT_POLICIES = ("skip", "refuse")
+
+
+def import_coco(project: Project, file: str | Path, images_root: str | Path, *, policy: str = "refuse",
+                state: str = IN_REVIEW, participant: str | None = None, user: str | None = None,
+                progress=None) -> tuple[Changes, coco.ImportPlan]:
+    """Import a COCO keypoints file, all in one transaction.
+
+    ``policy='refuse'``: any problem refuses the whole file (nothing written).
+    ``policy='skip'``: bad records are skipped and reported; the rest is imported.
+    """
+    if policy not in IMPORT_POLICIES:
+        raise KinemarkError(f"unknown import policy {policy!r}; use skip or refuse")
+    if state not in STATES:
+        raise KinemarkError(f"unknown state {state!r}")
+    who = project.user(user)
+    root = Path(images_root)
+    if not root.is_dir():
+        raise KinemarkError("the image folder does not exist", where=str(root))
+    data = coco.load_json(Path(file))
+    plan = coco.plan_import(data, project.skeleton, root, source=str(file))
+    if plan.problems and policy == "refuse":
+        shown = "; ".join(str(p) for p in plan.problems[:5])
+        more = f" (and {len(plan.problems) - 5} more)" if len(plan.problems) > 5 else ""
+        raise KinemarkError(f"{len(plan.problems)} problem(s), nothing imported: {shown}{more}. "
+                            f"Fix the file, or import with --on-problem skip to leave those records out",
+                            where=str(file))
+    store = project.store
+    frame_for_image: dict = {}
+    media_ids, ann_ids = [], []
+    with store.tx():
+        session_id = None
+        if participant:
+            p = store.participant(participant, create=True, user_id=who.id)
+            session_id = store.session(p.id, 1, create=True, user_id=who.id).id
+        for n, (iid, path, w, h) in enumerate(plan.images):
+            _tick(progress, n, len(plan.images), "reading images")
+            try:
+                probe = probe_image(path)
+            except KinemarkError as e:
+                if policy == "refuse":
+                    raise
+                plan.problems.append(coco.Problem(f"image id {iid}", str(e)))
+                continue
+            if (w and int(w) != probe.width) or (h and int(h) != probe.height):
+                msg = (f"file is {probe.width}x{probe.height} but the COCO entry says {w}x{h}")
+                if policy == "refuse":
+                    raise KinemarkError(msg, where=f"{file}: image id {iid}")
+                plan.problems.append(coco.Problem(f"image id {iid}", msg))
+                continue
+            sha = file_sha256(path)
+            existing = store.media_by_sha(sha)
+            if existing is not None:
+                frame_for_image[iid] = store.frames(existing.id)[0].id
+                continue
+            stored, base = project.stored_path(path)
+            media, fids = store.add_media(session_id=session_id, kind="image", path=stored, path_base=base,
+                                          sha256=sha, fps=None, frame_count=1, width=probe.width,
+                                          height=probe.height, frames=[(0, None, probe.checksums[0])],
+                                          user_id=who.id)
+            media_ids.append(media.id)
+            frame_for_image[iid] = fids[0]
+        per_frame: dict = {}
+        K = project.skeleton.num_keypoints
+        for aid, iid, arr, bbox in plan.annotations:
+            fid = frame_for_image.get(iid)
+            if fid is None:
+                continue
+            person = per_frame.get(fid, 0)
+            while store.annotation(fid, person) is not None:
+                person += 1
+            per_frame[fid] = person + 1
+            a = store.save_annotation(fid, arr, ["imported"] * K, state=state, person=person, bbox=bbox,
+                                      user_id=who.id, action="import")
+            ann_ids.append(a.id)
+    msg = f"imported {len(ann_ids)} annotations on {len(frame_for_image)} images"
+    if plan.problems:
+        msg += f"; skipped {len(plan.problems)} bad record(s)"
+    if plan.notices:
+        msg += f"; ignored {len(plan.notices)} non-person or crowd record(s)"
+    return Changes(media=tuple(media_ids), annotations=tuple(ann_ids), message=msg), plan

@@ -1,0 +1,668 @@
+"""The project store: the only module in Kinemark that speaks SQL.
+
+A project is a folder holding one SQLite database (``project.kinemark.sqlite``)
+plus the media it references. The database runs in WAL mode with foreign keys
+on; every user edit is its own committed transaction, and its row in the
+append-only event log is written in that same transaction.
+
+Schema changes are forward migrations: ``MIGRATIONS[i]`` takes a database
+from version i to version i + 1. A database newer than this code is refused.
+"""
+from __future__ import annotations
+
+import json
+import os
+import sqlite3
+import threading
+from contextlib import contextmanager
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Iterable, Iterator
+
+import numpy as np
+
+from .errors import KinemarkError
+from .model import (ACCEPTED, ROLES, SOURCES, STATES, Annotation, Event, Frame, Media,
+                    Participant, Proposal, Session, User)
+from .skeleton import Skeleton
+
+DB_NAME = "project.kinemark.sqlite"
+
+_V1 = """
+CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE skeletons (
+    id INTEGER PRIMARY KEY,
+    name TEXT NOT NULL UNIQUE,
+    definition TEXT NOT NULL
+);
+CREATE TABLE participants (
+    id INTEGER PRIMARY KEY,
+    code TEXT NOT NULL UNIQUE
+);
+CREATE TABLE sessions (
+    id INTEGER PRIMARY KEY,
+    participant_id INTEGER NOT NULL REFERENCES participants(id),
+    number INTEGER NOT NULL,
+    UNIQUE (participant_id, number)
+);
+CREATE TABLE media (
+    id INTEGER PRIMARY KEY,
+    session_id INTEGER REFERENCES sessions(id),
+    kind TEXT NOT NULL CHECK (kind IN ('video', 'image')),
+    path TEXT NOT NULL,
+    path_base TEXT NOT NULL CHECK (path_base IN ('project', 'media_root', 'absolute')),
+    sha256 TEXT NOT NULL UNIQUE,
+    fps REAL,
+    frame_count INTEGER NOT NULL,
+    width INTEGER NOT NULL,
+    height INTEGER NOT NULL,
+    status TEXT NOT NULL DEFAULT 'ok' CHECK (status IN ('ok', 'changed')),
+    added_at TEXT NOT NULL
+);
+CREATE TABLE frames (
+    id INTEGER PRIMARY KEY,
+    media_id INTEGER NOT NULL REFERENCES media(id),
+    frame_index INTEGER NOT NULL,
+    timestamp REAL,
+    pixel_sha TEXT NOT NULL,
+    UNIQUE (media_id, frame_index)
+);
+CREATE TABLE users (
+    id INTEGER PRIMARY KEY,
+    name TEXT NOT NULL UNIQUE,
+    role TEXT NOT NULL CHECK (role IN ('annotator', 'reviewer', 'admin'))
+);
+CREATE TABLE annotations (
+    id INTEGER PRIMARY KEY,
+    frame_id INTEGER NOT NULL REFERENCES frames(id),
+    person INTEGER NOT NULL DEFAULT 0,
+    skeleton_id INTEGER NOT NULL REFERENCES skeletons(id),
+    keypoints TEXT NOT NULL,
+    sources TEXT NOT NULL,
+    state TEXT NOT NULL CHECK (state IN ('prefilled', 'drafting', 'in_review', 'accepted', 'returned')),
+    version INTEGER NOT NULL DEFAULT 1,
+    bbox TEXT,
+    updated_by INTEGER REFERENCES users(id),
+    updated_at TEXT,
+    UNIQUE (frame_id, person)
+);
+CREATE INDEX annotations_state ON annotations(state);
+CREATE TABLE proposals (
+    id INTEGER PRIMARY KEY,
+    frame_id INTEGER NOT NULL REFERENCES frames(id),
+    person INTEGER NOT NULL DEFAULT 0,
+    model_id TEXT NOT NULL,
+    model_hash TEXT NOT NULL,
+    keypoints TEXT NOT NULL,
+    confidence TEXT NOT NULL,
+    signals TEXT NOT NULL,
+    score REAL NOT NULL,
+    region TEXT,
+    embedding BLOB,
+    adapted INTEGER NOT NULL DEFAULT 0,
+    created_at TEXT NOT NULL,
+    UNIQUE (frame_id, person, model_hash)
+);
+CREATE TABLE events (
+    id INTEGER PRIMARY KEY,
+    at TEXT NOT NULL,
+    user_id INTEGER REFERENCES users(id),
+    action TEXT NOT NULL,
+    entity TEXT NOT NULL,
+    entity_id INTEGER,
+    before TEXT,
+    after TEXT
+);
+CREATE TRIGGER events_append_only_update BEFORE UPDATE ON events
+BEGIN SELECT RAISE(ABORT, 'the event log is append-only'); END;
+CREATE TRIGGER events_append_only_delete BEFORE DELETE ON events
+BEGIN SELECT RAISE(ABORT, 'the event log is append-only'); END;
+"""
+
+#: MIGRATIONS[i] upgrades a database at schema version i to version i + 1.
+MIGRATIONS: list[str] = [_V1]
+
+
+def schema_version() -> int:
+    return len(MIGRATIONS)
+
+
+def now_iso() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="milliseconds")
+
+
+def _kp_json(kps: np.ndarray) -> str:
+    a = np.asarray(kps, dtype=float)
+    return json.dumps([[float(x), float(y), int(v)] for x, y, v in a])
+
+
+def _kp_load(text: str) -> np.ndarray:
+    arr = np.array(json.loads(text), dtype=float)
+    return arr.reshape(-1, 3)
+
+
+def _arr_json(a) -> str:
+    return json.dumps([None if not np.isfinite(x) else float(x) for x in np.asarray(a, float)])
+
+
+def _arr_load(text: str) -> np.ndarray:
+    return np.array([np.nan if x is None else x for x in json.loads(text)], dtype=float)
+
+
+class Store:
+    """One open project database. Not shared between threads: open one per thread."""
+
+    def __init__(self, path: str | Path, *, create: bool = False):
+        self.path = Path(path)
+        if not create and not self.path.exists():
+            raise KinemarkError(f"no Kinemark project database at {self.path}")
+        try:
+            self._db = sqlite3.connect(str(self.path), isolation_level=None,
+                                       check_same_thread=False, timeout=30.0)
+            self._db.execute("PRAGMA journal_mode=WAL")
+            self._db.execute("PRAGMA foreign_keys=ON")
+            self._db.execute("PRAGMA synchronous=NORMAL")
+            self._db.execute("PRAGMA busy_timeout=30000")
+        except sqlite3.DatabaseError as e:
+            raise KinemarkError(f"cannot open project database {self.path}: {e}") from None
+        if create:
+            try:
+                os.chmod(self.path, 0o600)
+            except OSError:
+                pass
+        self._lock = threading.RLock()
+        self._depth = 0
+        self.migrate()
+
+    # ---- transactions and schema -------------------------------------------------
+
+    def close(self):
+        self._db.close()
+
+    @contextmanager
+    def tx(self) -> Iterator[sqlite3.Connection]:
+        """One committed transaction (nested calls join the outer one)."""
+        with self._lock:
+            if self._depth:
+                self._depth += 1
+                try:
+                    yield self._db
+                finally:
+                    self._depth -= 1
+                return
+            self._db.execute("BEGIN IMMEDIATE")
+            self._depth = 1
+            try:
+                yield self._db
+            except BaseException:
+                self._db.execute("ROLLBACK")
+                raise
+            else:
+                self._db.execute("COMMIT")
+            finally:
+                self._depth = 0
+
+    def version(self) -> int:
+        try:
+            row = self._db.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
+        except sqlite3.OperationalError:
+            return 0
+        except sqlite3.DatabaseError as e:
+            raise KinemarkError(f"{self.path} is not a Kinemark project database ({e})") from None
+        return int(row[0]) if row else 0
+
+    def migrate(self, migrations: list[str] | None = None) -> int:
+        """Bring the schema forward. Returns the number of migrations applied."""
+        migrations = MIGRATIONS if migrations is None else migrations
+        current = self.version()
+        if current > len(migrations):
+            raise KinemarkError(
+                f"this project was written by a newer Kinemark (schema {current}; "
+                f"this version understands up to {len(migrations)}): upgrade Kinemark")
+        applied = 0
+        for v in range(current, len(migrations)):
+            with self.tx() as db:
+                for stmt in _split_sql(migrations[v]):
+                    db.execute(stmt)
+                db.execute("INSERT OR REPLACE INTO meta(key, value) VALUES ('schema_version', ?)",
+                           (str(v + 1),))
+                db.execute("INSERT INTO events(at, user_id, action, entity, entity_id, before, after)"
+                           " VALUES (?, NULL, 'migrate', 'schema', NULL, ?, ?)",
+                           (now_iso(), json.dumps({"version": v}), json.dumps({"version": v + 1})))
+            applied += 1
+        return applied
+
+    def integrity_check(self) -> str:
+        return self._db.execute("PRAGMA integrity_check").fetchone()[0]
+
+    # ---- meta ---------------------------------------------------------------------
+
+    def get_meta(self, key: str, default: str | None = None) -> str | None:
+        row = self._db.execute("SELECT value FROM meta WHERE key=?", (key,)).fetchone()
+        return row[0] if row else default
+
+    def set_meta(self, key: str, value: str, *, user_id: int | None = None):
+        with self.tx() as db:
+            before = self.get_meta(key)
+            db.execute("INSERT OR REPLACE INTO meta(key, value) VALUES (?, ?)", (key, value))
+            self._event(db, user_id, "set", "meta", None, {key: before}, {key: value})
+
+    # ---- event log ----------------------------------------------------------------
+
+    @staticmethod
+    def _event(db, user_id, action, entity, entity_id, before, after):
+        db.execute(
+            "INSERT INTO events(at, user_id, action, entity, entity_id, before, after)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?)",
+            (now_iso(), user_id, action, entity, entity_id,
+             None if before is None else json.dumps(before, sort_keys=True),
+             None if after is None else json.dumps(after, sort_keys=True)))
+
+    def events(self, *, entity: str | None = None, entity_id: int | None = None,
+               limit: int | None = None) -> list[Event]:
+        q, args = "SELECT id, at, user_id, action, entity, entity_id, before, after FROM events", []
+        conds = []
+        if entity is not None:
+            conds.append("entity=?"); args.append(entity)
+        if entity_id is not None:
+            conds.append("entity_id=?"); args.append(entity_id)
+        if conds:
+            q += " WHERE " + " AND ".join(conds)
+        q += " ORDER BY id"
+        if limit is not None:
+            q += " LIMIT ?"; args.append(int(limit))
+        return [Event(*r) for r in self._db.execute(q, args)]
+
+    # ---- skeletons ----------------------------------------------------------------
+
+    def add_skeleton(self, skeleton: Skeleton, *, user_id: int | None = None) -> int:
+        with self.tx() as db:
+            cur = db.execute("INSERT INTO skeletons(name, definition) VALUES (?, ?)",
+                             (skeleton.name, skeleton.to_json()))
+            self._event(db, user_id, "add", "skeleton", cur.lastrowid, None, skeleton.to_dict())
+            return cur.lastrowid
+
+    def skeleton(self, skeleton_id: int | None = None) -> tuple[int, Skeleton]:
+        """The project's skeleton (the first one, unless an id is given)."""
+        if skeleton_id is None:
+            row = self._db.execute("SELECT id, definition FROM skeletons ORDER BY id LIMIT 1").fetchone()
+        else:
+            row = self._db.execute("SELECT id, definition FROM skeletons WHERE id=?",
+                                   (skeleton_id,)).fetchone()
+        if row is None:
+            raise KinemarkError("the project has no skeleton")
+        return row[0], Skeleton.from_dict(json.loads(row[1]), source="project skeleton")
+
+    # ---- users --------------------------------------------------------------------
+
+    def add_user(self, name: str, role: str, *, by: int | None = None) -> User:
+        if role not in ROLES:
+            raise KinemarkError(f"unknown role {role!r}; roles are {', '.join(ROLES)}")
+        if not name or not name.strip():
+            raise KinemarkError("a user needs a name")
+        with self.tx() as db:
+            try:
+                cur = db.execute("INSERT INTO users(name, role) VALUES (?, ?)", (name.strip(), role))
+            except sqlite3.IntegrityError:
+                raise KinemarkError(f"there is already a user called {name!r}") from None
+            self._event(db, by, "add", "user", cur.lastrowid, None, {"name": name, "role": role})
+            return User(cur.lastrowid, name.strip(), role)
+
+    def user(self, name_or_id) -> User:
+        if isinstance(name_or_id, int):
+            row = self._db.execute("SELECT id, name, role FROM users WHERE id=?", (name_or_id,)).fetchone()
+        else:
+            row = self._db.execute("SELECT id, name, role FROM users WHERE name=?", (name_or_id,)).fetchone()
+        if row is None:
+            raise KinemarkError(f"no user {name_or_id!r} in this project")
+        return User(*row)
+
+    def users(self) -> list[User]:
+        return [User(*r) for r in self._db.execute("SELECT id, name, role FROM users ORDER BY id")]
+
+    # ---- participants, sessions ---------------------------------------------------
+
+    def participant(self, code: str, *, create: bool = False, user_id: int | None = None) -> Participant:
+        row = self._db.execute("SELECT id, code FROM participants WHERE code=?", (code,)).fetchone()
+        if row:
+            return Participant(*row)
+        if not create:
+            raise KinemarkError(f"no participant {code!r}")
+        with self.tx() as db:
+            cur = db.execute("INSERT INTO participants(code) VALUES (?)", (code,))
+            self._event(db, user_id, "add", "participant", cur.lastrowid, None, {"code": code})
+            return Participant(cur.lastrowid, code)
+
+    def participants(self) -> list[Participant]:
+        return [Participant(*r) for r in self._db.execute("SELECT id, code FROM participants ORDER BY code")]
+
+    def session(self, participant_id: int, number: int, *, create: bool = False,
+                user_id: int | None = None) -> Session:
+        row = self._db.execute("SELECT id, participant_id, number FROM sessions"
+                               " WHERE participant_id=? AND number=?", (participant_id, number)).fetchone()
+        if row:
+            return Session(*row)
+        if not create:
+            raise KinemarkError(f"no session {number} for that participant")
+        with self.tx() as db:
+            cur = db.execute("INSERT INTO sessions(participant_id, number) VALUES (?, ?)",
+                             (participant_id, number))
+            self._event(db, user_id, "add", "session", cur.lastrowid, None,
+                        {"participant_id": participant_id, "number": number})
+            return Session(cur.lastrowid, participant_id, number)
+
+    # ---- media and frames ---------------------------------------------------------
+
+    _MEDIA_SELECT = (
+        "SELECT m.id, m.session_id, m.kind, m.path, m.path_base, m.sha256, m.fps, m.frame_count,"
+        " m.width, m.height, m.status, p.code, s.number FROM media m"
+        " LEFT JOIN sessions s ON s.id = m.session_id"
+        " LEFT JOIN participants p ON p.id = s.participant_id")
+
+    def add_media(self, *, session_id: int | None, kind: str, path: str, path_base: str,
+                  sha256: str, fps: float | None, frame_count: int, width: int, height: int,
+                  frames: Iterable[tuple[int, float | None, str]], user_id: int | None = None
+                  ) -> tuple[Media, list[int]]:
+        """Insert a media record and its sampled frames (index, timestamp, pixel sha) in one transaction."""
+        with self.tx() as db:
+            try:
+                cur = db.execute(
+                    "INSERT INTO media(session_id, kind, path, path_base, sha256, fps, frame_count,"
+                    " width, height, status, added_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, 'ok', ?)",
+                    (session_id, kind, path, path_base, sha256, fps, frame_count, width, height, now_iso()))
+            except sqlite3.IntegrityError:
+                other = self.media_by_sha(sha256)
+                raise KinemarkError(f"this file is already in the project as {other.path!r} "
+                                    f"(same sha256)", where=path) from None
+            mid = cur.lastrowid
+            frame_ids = []
+            for idx, ts, sha in frames:
+                c = db.execute("INSERT INTO frames(media_id, frame_index, timestamp, pixel_sha)"
+                               " VALUES (?, ?, ?, ?)", (mid, int(idx), ts, sha))
+                frame_ids.append(c.lastrowid)
+            self._event(db, user_id, "add", "media", mid, None,
+                        {"path": path, "kind": kind, "sha256": sha256, "frames": len(frame_ids)})
+        return self.media(mid), frame_ids
+
+    def media(self, media_id: int) -> Media:
+        row = self._db.execute(self._MEDIA_SELECT + " WHERE m.id=?", (media_id,)).fetchone()
+        if row is None:
+            raise KinemarkError(f"no media {media_id}")
+        return Media(*row)
+
+    def media_by_sha(self, sha256: str) -> Media | None:
+        row = self._db.execute(self._MEDIA_SELECT + " WHERE m.sha256=?", (sha256,)).fetchone()
+        return Media(*row) if row else None
+
+    def all_media(self) -> list[Media]:
+        return [Media(*r) for r in self._db.execute(self._MEDIA_SELECT + " ORDER BY m.id")]
+
+    def set_media_status(self, media_id: int, status: str, *, sha256: str | None = None,
+                         path: str | None = None, path_base: str | None = None,
+                         user_id: int | None = None):
+        with self.tx() as db:
+            before = self.media(media_id)
+            db.execute("UPDATE media SET status=?, sha256=COALESCE(?, sha256), path=COALESCE(?, path),"
+                       " path_base=COALESCE(?, path_base) WHERE id=?",
+                       (status, sha256, path, path_base, media_id))
+            self._event(db, user_id, "status", "media", media_id,
+                        {"status": before.status, "sha256": before.sha256, "path": before.path},
+                        {"status": status, "sha256": sha256 or before.sha256, "path": path or before.path})
+
+    def update_frame_checksums(self, media_id: int, shas: dict[int, str], *, user_id=None):
+        with self.tx() as db:
+            for idx, sha in shas.items():
+                db.execute("UPDATE frames SET pixel_sha=? WHERE media_id=? AND frame_index=?",
+                           (sha, media_id, idx))
+            self._event(db, user_id, "relink", "media", media_id, None, {"frames": len(shas)})
+
+    def frames(self, media_id: int | None = None) -> list[Frame]:
+        if media_id is None:
+            rows = self._db.execute("SELECT id, media_id, frame_index, timestamp, pixel_sha FROM frames"
+                                    " ORDER BY media_id, frame_index")
+        else:
+            rows = self._db.execute("SELECT id, media_id, frame_index, timestamp, pixel_sha FROM frames"
+                                    " WHERE media_id=? ORDER BY frame_index", (media_id,))
+        return [Frame(*r) for r in rows]
+
+    def frame(self, frame_id: int) -> Frame:
+        row = self._db.execute("SELECT id, media_id, frame_index, timestamp, pixel_sha FROM frames"
+                               " WHERE id=?", (frame_id,)).fetchone()
+        if row is None:
+            raise KinemarkError(f"no frame {frame_id}")
+        return Frame(*row)
+
+    def frame_count(self) -> int:
+        return self._db.execute("SELECT COUNT(*) FROM frames").fetchone()[0]
+
+    # ---- annotations --------------------------------------------------------------
+
+    _ANN_SELECT = ("SELECT id, frame_id, person, keypoints, sources, state, version, bbox,"
+                   " updated_by, updated_at FROM annotations")
+
+    @staticmethod
+    def _ann(row) -> Annotation:
+        bbox = json.loads(row[7]) if row[7] else None
+        return Annotation(id=row[0], frame_id=row[1], person=row[2], keypoints=_kp_load(row[3]),
+                          sources=tuple(json.loads(row[4])), state=row[5], version=row[6],
+                          bbox=tuple(bbox) if bbox else None, updated_by=row[8], updated_at=row[9])
+
+    @staticmethod
+    def _ann_dict(a: Annotation | None):
+        if a is None:
+            return None
+        return {"keypoints": np.asarray(a.keypoints).tolist(), "sources": list(a.sources),
+                "state": a.state, "version": a.version, "bbox": list(a.bbox) if a.bbox else None}
+
+    def annotation(self, frame_id: int, person: int = 0) -> Annotation | None:
+        row = self._db.execute(self._ANN_SELECT + " WHERE frame_id=? AND person=?",
+                               (frame_id, person)).fetchone()
+        return self._ann(row) if row else None
+
+    def annotation_by_id(self, annotation_id: int) -> Annotation:
+        row = self._db.execute(self._ANN_SELECT + " WHERE id=?", (annotation_id,)).fetchone()
+        if row is None:
+            raise KinemarkError(f"no annotation {annotation_id}")
+        return self._ann(row)
+
+    def annotations(self, states: Iterable[str] | None = None) -> list[Annotation]:
+        if states is None:
+            rows = self._db.execute(self._ANN_SELECT + " ORDER BY frame_id, person")
+        else:
+            states = list(states)
+            q = self._ANN_SELECT + f" WHERE state IN ({','.join('?' * len(states))}) ORDER BY frame_id, person"
+            rows = self._db.execute(q, states)
+        return [self._ann(r) for r in rows]
+
+    def save_annotation(self, frame_id: int, keypoints: np.ndarray, sources: Iterable[str], *,
+                        state: str, person: int = 0, bbox=None, user_id: int | None = None,
+                        expected_version: int | None = None, action: str = "edit") -> Annotation:
+        """Create or replace one person's keypoints on one frame, as one transaction.
+
+        ``expected_version``: the version the caller last saw; if the stored one
+        differs, the save is refused (optimistic concurrency), naming who changed it.
+        """
+        _, skel = self.skeleton()
+        kps = np.asarray(keypoints, dtype=float)
+        sources = tuple(sources)
+        if kps.shape != (skel.num_keypoints, 3):
+            raise KinemarkError(f"expected {skel.num_keypoints} keypoints (x, y, v), got shape {kps.shape}")
+        if len(sources) != skel.num_keypoints or any(s not in SOURCES for s in sources):
+            raise KinemarkError(f"one source per keypoint, each one of {', '.join(SOURCES)}")
+        if state not in STATES:
+            raise KinemarkError(f"unknown state {state!r}")
+        if not np.all(np.isin(kps[:, 2], (0, 1, 2))):
+            raise KinemarkError("visibility must be 0, 1 or 2 (COCO)")
+        if not np.all(np.isfinite(kps[:, :2])):
+            raise KinemarkError("keypoint coordinates must be finite numbers")
+        kps = kps.copy()
+        kps[kps[:, 2] == 0, :2] = 0.0  # COCO stores unlabelled points as (0, 0, 0)
+        skel_id = self.skeleton()[0]
+        with self.tx() as db:
+            before = self.annotation(frame_id, person)
+            if expected_version is not None:
+                have = before.version if before else 0
+                if have != expected_version:
+                    who = self.user(before.updated_by).name if before and before.updated_by else "someone"
+                    raise KinemarkError(
+                        f"this frame was changed by {who} at {before.updated_at if before else '?'} "
+                        f"(version {have}, you had {expected_version}); reload it before saving")
+            at = now_iso()
+            bbox_text = json.dumps([float(b) for b in bbox]) if bbox is not None else None
+            if before is None:
+                cur = db.execute(
+                    "INSERT INTO annotations(frame_id, person, skeleton_id, keypoints, sources, state,"
+                    " version, bbox, updated_by, updated_at) VALUES (?, ?, ?, ?, ?, ?, 1, ?, ?, ?)",
+                    (frame_id, person, skel_id, _kp_json(kps), json.dumps(list(sources)), state,
+                     bbox_text, user_id, at))
+                ann_id = cur.lastrowid
+            else:
+                ann_id = before.id
+                db.execute("UPDATE annotations SET keypoints=?, sources=?, state=?, version=version+1,"
+                           " bbox=?, updated_by=?, updated_at=? WHERE id=?",
+                           (_kp_json(kps), json.dumps(list(sources)), state, bbox_text, user_id, at, ann_id))
+            after = self.annotation_by_id(ann_id)
+            self._event(db, user_id, action, "annotation", ann_id, self._ann_dict(before), self._ann_dict(after))
+        return after
+
+    def set_state(self, annotation_id: int, state: str, *, user_id: int | None = None,
+                  note: str | None = None) -> Annotation:
+        if state not in STATES:
+            raise KinemarkError(f"unknown state {state!r}")
+        with self.tx() as db:
+            before = self.annotation_by_id(annotation_id)
+            db.execute("UPDATE annotations SET state=?, version=version+1, updated_by=?, updated_at=?"
+                       " WHERE id=?", (state, user_id, now_iso(), annotation_id))
+            after = self.annotation_by_id(annotation_id)
+            self._event(db, user_id, "state", "annotation", annotation_id,
+                        {"state": before.state, "version": before.version},
+                        {"state": state, "version": after.version, "note": note})
+        return after
+
+    def state_counts(self) -> dict[str, int]:
+        counts = {s: 0 for s in STATES}
+        for state, n in self._db.execute("SELECT state, COUNT(*) FROM annotations GROUP BY state"):
+            counts[state] = n
+        labelled = self._db.execute("SELECT COUNT(DISTINCT frame_id) FROM annotations").fetchone()[0]
+        counts["blank"] = self.frame_count() - labelled
+        return counts
+
+    def counts_by_participant(self) -> list[tuple[str, int, int, int]]:
+        """(participant code or '-', media, frames, accepted annotations) per participant."""
+        q = """
+        SELECT COALESCE(p.code, '-'), COUNT(DISTINCT m.id), COUNT(DISTINCT f.id),
+               COUNT(DISTINCT CASE WHEN a.state = ? THEN a.id END)
+        FROM media m
+        LEFT JOIN sessions s ON s.id = m.session_id
+        LEFT JOIN participants p ON p.id = s.participant_id
+        LEFT JOIN frames f ON f.media_id = m.id
+        LEFT JOIN annotations a ON a.frame_id = f.id
+        GROUP BY COALESCE(p.code, '-') ORDER BY 1"""
+        return [tuple(r) for r in self._db.execute(q, (ACCEPTED,))]
+
+    def export_rows(self, states: Iterable[str]) -> list[tuple]:
+        """Everything an export needs in one query: annotation x frame x media x participant.
+
+        Returns tuples (annotation_id, frame_id, person, keypoints_json, bbox_json, state,
+        media_id, frame_index, width, height, participant_code, media_path, timestamp).
+        """
+        states = list(states)
+        q = f"""
+        SELECT a.id, a.frame_id, a.person, a.keypoints, a.bbox, a.state,
+               m.id, f.frame_index, m.width, m.height, p.code, m.path, f.timestamp
+        FROM annotations a
+        JOIN frames f ON f.id = a.frame_id
+        JOIN media m ON m.id = f.media_id
+        LEFT JOIN sessions s ON s.id = m.session_id
+        LEFT JOIN participants p ON p.id = s.participant_id
+        WHERE a.state IN ({','.join('?' * len(states))})
+        ORDER BY a.frame_id, a.person"""
+        return list(self._db.execute(q, states))
+
+    # ---- proposals ----------------------------------------------------------------
+
+    _PROP_SELECT = ("SELECT id, frame_id, person, model_id, model_hash, keypoints, confidence, signals,"
+                    " score, region, embedding, adapted, created_at FROM proposals")
+
+    @staticmethod
+    def _prop(row) -> Proposal:
+        emb = np.frombuffer(row[10], dtype=np.float32).copy() if row[10] is not None else None
+        return Proposal(id=row[0], frame_id=row[1], person=row[2], model_id=row[3], model_hash=row[4],
+                        keypoints=_kp_load(row[5]), confidence=_arr_load(row[6]),
+                        signals={k: _arr_load(json.dumps(v)) for k, v in json.loads(row[7]).items()},
+                        score=row[8], region=json.loads(row[9]) if row[9] else None,
+                        embedding=emb, adapted=bool(row[11]), created_at=row[12])
+
+    def save_proposal(self, frame_id: int, *, model_id: str, model_hash: str, keypoints, confidence,
+                      signals: dict, score: float, region: dict | None = None, embedding=None,
+                      adapted: bool = False, person: int = 0) -> int:
+        emb = None if embedding is None else np.asarray(embedding, dtype=np.float32).tobytes()
+        sig = {k: json.loads(_arr_json(v)) for k, v in signals.items()}
+        with self.tx() as db:
+            cur = db.execute(
+                "INSERT OR REPLACE INTO proposals(frame_id, person, model_id, model_hash, keypoints,"
+                " confidence, signals, score, region, embedding, adapted, created_at)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (frame_id, person, model_id, model_hash, _kp_json(keypoints), _arr_json(confidence),
+                 json.dumps(sig), float(score), json.dumps(region) if region else None, emb,
+                 int(adapted), now_iso()))
+            return cur.lastrowid
+
+    def proposal(self, frame_id: int, person: int = 0, model_hash: str | None = None) -> Proposal | None:
+        q = self._PROP_SELECT + " WHERE frame_id=? AND person=?"
+        args = [frame_id, person]
+        if model_hash:
+            q += " AND model_hash=?"; args.append(model_hash)
+        row = self._db.execute(q + " ORDER BY id DESC LIMIT 1", args).fetchone()
+        return self._prop(row) if row else None
+
+    def proposals(self, model_hash: str | None = None) -> list[Proposal]:
+        if model_hash is None:
+            rows = self._db.execute(self._PROP_SELECT + " ORDER BY frame_id, person, id")
+        else:
+            rows = self._db.execute(self._PROP_SELECT + " WHERE model_hash=? ORDER BY frame_id, person",
+                                    (model_hash,))
+        return [self._prop(r) for r in rows]
+
+    def proposed_frame_ids(self, model_hash: str) -> set[int]:
+        return {r[0] for r in self._db.execute("SELECT frame_id FROM proposals WHERE model_hash=?",
+                                                (model_hash,))}
+
+    # ---- bulk (benchmarks and imports) --------------------------------------------
+
+    def bulk_insert_frames(self, media_id: int, frames: Iterable[tuple[int, float | None, str]]):
+        with self.tx() as db:
+            db.executemany("INSERT INTO frames(media_id, frame_index, timestamp, pixel_sha) VALUES (?, ?, ?, ?)",
+                           ((media_id, i, t, s) for i, t, s in frames))
+
+    def bulk_insert_annotations(self, rows: Iterable[tuple[int, np.ndarray, str]], *, user_id: int | None = None):
+        """Fast insert of (frame_id, keypoints, state) rows with human sources, no event rows.
+
+        For benchmarks and synthetic projects only: user edits go through save_annotation.
+        """
+        skel_id, skel = self.skeleton()
+        src = json.dumps(["human"] * skel.num_keypoints)
+        at = now_iso()
+        with self.tx() as db:
+            db.executemany(
+                "INSERT INTO annotations(frame_id, person, skeleton_id, keypoints, sources, state, version,"
+                " bbox, updated_by, updated_at) VALUES (?, 0, ?, ?, ?, ?, 1, NULL, ?, ?)",
+                ((fid, skel_id, _kp_json(k), src, state, user_id, at) for fid, k, state in rows))
+
+    def frame_ids(self, media_id: int) -> dict[int, int]:
+        return {idx: fid for fid, idx in self._db.execute(
+            "SELECT id, frame_index FROM frames WHERE media_id=?", (media_id,))}
+
+
+def _split_sql(script: str) -> list[str]:
+    """Split a migration script into statements (triggers keep their BEGIN ... END; bodies)."""
+    out, buf = [], []
+    for line in script.strip().splitlines():
+        buf.append(line)
+        text = "\n".join(buf).strip()
+        if text.endswith(";") and sqlite3.complete_statement(text):
+            out.append(text)
+            buf = []
+    if "\n".join(buf).strip():
+        out.append("\n".join(buf).strip())
+    return out

@@ -1,0 +1,56 @@
+import json
+import subprocess
+import sys
+
+import pytest
+
+from conftest import write_video
+from kinemark.core.cli import main
+
+
+def run(*args):
+    return main([str(a) for a in args])
+
+
+def test_new_add_info_export(tmp_path, capsys):
+    proj = tmp_path / "p"
+    assert run("new", proj) == 0
+    assert "research data, not a diagnosis" in capsys.readouterr().out
+    v = write_video(tmp_path / "v.mp4", n_frames=30)
+    assert run("add", proj, v, "--participant", "QB-02", "--count", "4") == 0
+    out = capsys.readouterr().out
+    assert "4 frames" in out
+    assert run("info", proj) == 0
+    out = capsys.readouterr().out
+    assert "frames 4" in out and "QB-02" in out and "blank 4" in out
+    assert run("export", proj, tmp_path / "o.json") == 0
+    assert json.loads((tmp_path / "o.json").read_text())["annotations"] == []
+
+
+@pytest.mark.parametrize("args,match", [
+    (["info", "{tmp}/nothing"], "is not a folder"),
+    (["new", "{tmp}/p", "--skeleton", "{tmp}/none.json"], "no built-in skeleton"),
+    (["add", "{tmp}/p0", "{tmp}/x.mp4"], "not a Kinemark project"),
+    (["export", "{tmp}/p0", "{tmp}/o.json", "--format", "xml"], "invalid choice"),
+    (["frobnicate"], "invalid choice"),
+])
+def test_user_errors_exit_2_with_one_line(tmp_path, capsys, args, match):
+    (tmp_path / "p0").mkdir()
+    rc = run(*[a.format(tmp=tmp_path) for a in args])
+    err = capsys.readouterr().err
+    assert rc == 2
+    assert match in err
+    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
+
+
+def test_no_traceback_from_the_installed_command(tmp_path):
+    (tmp_path / "bad.mp4").write_bytes(b"")
+    subprocess.run([sys.executable, "-m", "kinemark.core.cli", "new", str(tmp_path / "p")], check=True,
+                   capture_output=True)
+    r = subprocess.run([sys.executable, "-m", "kinemark.core.cli", "add", str(tmp_path / "p"),
+                        str(tmp_path / "bad.mp4")], capture_output=True, text=True)
+    assert r.returncode == 2
+    assert "empty" in r.stderr and "Traceback" not in r.stderr
+    r = subprocess.run([sys.executable, "-m", "kinemark.core.cli", "--debug", "add", str(tmp_path / "p"),
+                        str(tmp_path / "bad.mp4")], capture_output=True, text=True)
+    assert r.returncode != 0 and "Traceback" in r.stderr
