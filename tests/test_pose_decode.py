@@ -1,0 +1,226 @@
+"""Heatmap decoding: argmax, DARK sub-pixel refinement, multiple-peak entropy.
+
+Ground truth here is analytic: heatmaps are sampled Gaussians whose centres
+are chosen (known sub-pixel positions), the target form used to train
+top-down heatmap models.
+"""
+import math
+
+import numpy as np
+import pytest
+
+from kinemark.core.pose.decode import (
+    argmax_decode, dark_decode, multipeak_entropy, opencv_kernel_sigma, quarter_offset_decode)
+
+
+def gaussian(cx, cy, h=64, w=48, sigma=2.0, amp=1.0):
+    yy, xx = np.mgrid[0:h, 0:w]
+    return amp * np.exp(-((xx - cx) ** 2 + (yy - cy) ** 2) / (2 * sigma ** 2))
+
+
+def centres(n, seed, h=64, w=48, pad=8):
+    rng = np.random.default_rng(seed)
+    return np.column_stack([rng.uniform(pad, w - 1 - pad, n), rng.uniform(pad, h - 1 - pad, n)])
+
+
+# -- argmax -----------------------------------------------------------------
+
+def test_argmax_finds_integer_peak_as_x_y():
+    hm = np.zeros((2, 10, 7))
+    hm[0, 6, 2] = 0.8   # row 6, column 2 -> (x, y) = (2, 6)
+    hm[1, 1, 5] = 0.3
+    coords, maxvals = argmax_decode(hm)
+    assert coords.dtype.kind == "i"
+    assert coords.tolist() == [[2, 6], [5, 1]]
+    np.testing.assert_allclose(maxvals, [0.8, 0.3])
+
+
+def test_argmax_ignores_nan():
+    hm = gaussian(20.0, 30.0)[None].copy()
+    hm[0, 5, 5] = np.nan
+    hm[0, 6, 6] = np.inf
+    coords, maxvals = argmax_decode(hm)
+    assert coords.tolist() == [[20, 30]]
+    assert maxvals[0] == pytest.approx(1.0)
+
+
+def test_argmax_error_reaches_half_a_cell():
+    # Plain argmax quantises to the grid: the error is up to 0.5 cell per axis.
+    c = centres(400, seed=1)
+    hm = np.stack([gaussian(x, y) for x, y in c])
+    coords, _ = argmax_decode(hm)
+    err = np.abs(coords - c)
+    assert err.max() <= 0.5 + 1e-9
+    assert err.max() > 0.45
+
+
+# -- DARK -------------------------------------------------------------------
+# Method: Zhang, Zhu, Dai, Ye, Zhu, CVPR 2020, "Distribution-Aware Coordinate
+# Representation for Human Pose Estimation". For a Gaussian heatmap the log is
+# a quadratic, so one Newton step recovers the centre to far below a cell.
+
+def test_dark_recovers_known_subpixel_centre():
+    cx, cy = 12.37, 20.81
+    hm = gaussian(cx, cy)[None]
+    r = dark_decode(hm, sigma=2.0)
+    assert r.refined[0] and not r.no_peak[0]
+    assert abs(r.coords[0, 0] - cx) <= 0.05
+    assert abs(r.coords[0, 1] - cy) <= 0.05
+    a, _ = argmax_decode(hm)
+    # argmax is off by the sub-cell part of the centre: 0.37 and 0.19 here
+    assert abs(a[0, 0] - cx) == pytest.approx(0.37)
+    assert abs(a[0, 1] - cy) == pytest.approx(0.19)
+
+
+def test_dark_beats_argmax_and_quarter_offset_on_many_centres():
+    c = centres(300, seed=2)
+    hm = np.stack([gaussian(x, y) for x, y in c])
+    dark = dark_decode(hm, sigma=2.0).coords
+    arg, _ = argmax_decode(hm)
+    quarter, _ = quarter_offset_decode(hm)  # common practice in earlier top-down code
+    e_dark = np.linalg.norm(dark - c, axis=1)
+    e_arg = np.linalg.norm(arg - c, axis=1)
+    e_quarter = np.linalg.norm(quarter - c, axis=1)
+    assert e_dark.max() <= 0.05
+    assert e_arg.max() > 0.4
+    assert e_quarter.mean() > 5 * e_dark.mean()
+    assert e_quarter.max() > 0.1
+    assert e_quarter.mean() < e_arg.mean()  # the heuristic does help over plain argmax
+
+
+def test_dark_with_kernel_instead_of_sigma():
+    # OpenCV's rule gives sigma 2.0 for an 11-cell kernel (getGaussianKernel docs).
+    assert opencv_kernel_sigma(11) == pytest.approx(2.0)
+    c = centres(50, seed=3)
+    hm = np.stack([gaussian(x, y) for x, y in c])
+    r = dark_decode(hm, kernel=11)
+    assert np.abs(r.coords - c).max() <= 0.05
+
+
+def test_dark_on_a_wider_training_gaussian_and_scaled_amplitude():
+    c = centres(50, seed=4, pad=10)
+    hm = np.stack([gaussian(x, y, sigma=3.0, amp=0.37) for x, y in c])
+    r = dark_decode(hm, sigma=3.0)
+    assert np.abs(r.coords - c).max() <= 0.05
+    np.testing.assert_allclose(r.maxvals, hm.reshape(len(c), -1).max(axis=1))
+
+
+def test_dark_is_robust_to_noise():
+    # not exact any more, but still better than argmax on average
+    rng = np.random.default_rng(5)
+    c = centres(200, seed=6)
+    hm = np.stack([gaussian(x, y) for x, y in c]) + rng.normal(0, 0.02, (200, 64, 48))
+    e_dark = np.linalg.norm(dark_decode(hm, sigma=2.0).coords - c, axis=1)
+    e_arg = np.linalg.norm(argmax_decode(hm)[0] - c, axis=1)
+    assert e_dark.mean() < 0.5 * e_arg.mean()
+
+
+def test_dark_flat_and_zero_heatmaps_return_argmax_flagged():
+    hm = np.stack([np.zeros((16, 16)), np.full((16, 16), 0.4), -np.ones((16, 16))])
+    r = dark_decode(hm)
+    assert r.no_peak.tolist() == [True, True, True]
+    assert not r.refined.any()
+    assert np.isfinite(r.coords).all()
+    np.testing.assert_array_equal(r.coords, argmax_decode(hm)[0])
+
+
+def test_dark_nan_safe():
+    hm = gaussian(20.3, 30.6)[None].copy()
+    hm[0, 0:3, 0:3] = np.nan
+    hm[0, 30, 40] = -np.inf
+    r = dark_decode(hm, sigma=2.0)
+    assert np.isfinite(r.coords).all()
+    assert np.abs(r.coords[0] - [20.3, 30.6]).max() <= 0.05
+    allnan = np.full((1, 8, 8), np.nan)
+    r = dark_decode(allnan)
+    assert r.no_peak[0] and np.isfinite(r.coords).all() and r.maxvals[0] == 0.0
+
+
+def test_dark_border_peak_refines_along_the_free_axis_only():
+    hm = gaussian(0.0, 20.4)[None]   # peak on the left border column
+    r = dark_decode(hm, sigma=2.0)
+    assert r.refined[0]
+    assert r.coords[0, 0] == 0.0
+    assert abs(r.coords[0, 1] - 20.4) <= 0.05
+    corner = gaussian(0.0, 0.0)[None]
+    r = dark_decode(corner, sigma=2.0)
+    assert not r.refined[0]
+    assert r.coords[0].tolist() == [0.0, 0.0]
+
+
+def test_dark_near_border_bias_shrinks_with_distance():
+    # Within ~2 sigma of the edge the blur sees the (zero) padding and pulls
+    # the estimate inwards; the bias must shrink with distance from the edge
+    # and vanish (interior accuracy) from about 2 sigma on.
+    xs = (1.2, 1.7, 2.4, 3.1, 4.0, 5.0)
+    err = [dark_decode(gaussian(x, 30.0)[None], sigma=2.0).coords[0, 0] - x for x in xs]
+    assert all(abs(e) < 0.5 for e in err)
+    assert all(abs(a) > abs(b) for a, b in zip(err, err[1:]))
+    assert abs(err[-2]) <= 0.05 and abs(err[-1]) <= 0.05
+
+
+# -- multiple-peak entropy --------------------------------------------------
+# Method: Liu & Ferrari, ICCV 2017, "Active Learning for Human Pose Estimation".
+# Shannon entropy in nats: a fair two-outcome distribution has ln 2 (handbook value).
+
+def test_entropy_single_peak_is_zero():
+    hm = gaussian(20.3, 30.1)[None]
+    assert multipeak_entropy(hm)[0] == 0.0
+
+
+def test_entropy_two_equal_peaks_is_ln2():
+    hm = (gaussian(10.0, 12.0) + gaussian(35.0, 50.0))[None]
+    assert multipeak_entropy(hm)[0] == pytest.approx(math.log(2), abs=1e-6)
+
+
+def test_entropy_three_equal_peaks_is_ln3():
+    hm = (gaussian(10.0, 12.0) + gaussian(35.0, 50.0) + gaussian(35.0, 12.0))[None]
+    assert multipeak_entropy(hm)[0] == pytest.approx(math.log(3), abs=1e-6)
+
+
+def test_entropy_matches_shannon_of_peak_values_and_orders_dominance():
+    a, b = 1.0, 0.4
+    hm = np.stack([
+        gaussian(10.0, 12.0, amp=a),
+        gaussian(10.0, 12.0, amp=a) + gaussian(35.0, 50.0, amp=b),
+        gaussian(10.0, 12.0, amp=a) + gaussian(35.0, 50.0, amp=a),
+    ])
+    e = multipeak_entropy(hm)
+    p = np.array([a, b]) / (a + b)
+    assert e[1] == pytest.approx(-(p * np.log(p)).sum(), abs=1e-6)
+    assert e[0] < e[1] < e[2]
+
+
+def test_entropy_threshold_drops_small_peaks():
+    hm = (gaussian(10.0, 12.0) + gaussian(35.0, 50.0, amp=0.05))[None]
+    assert multipeak_entropy(hm, threshold_ratio=0.1)[0] == 0.0
+    assert multipeak_entropy(hm, threshold_ratio=0.01)[0] > 0.0
+
+
+def test_entropy_plateau_counts_once_and_flat_is_nan():
+    hm = np.zeros((2, 16, 16))
+    hm[0, 5, 5] = hm[0, 5, 6] = 1.0     # two adjacent equal cells: one peak
+    hm[1, :, :] = 0.5                    # flat: no peak distribution
+    e = multipeak_entropy(hm)
+    assert e[0] == 0.0
+    assert np.isnan(e[1])
+
+
+def test_entropy_window_separates_close_peaks():
+    # two peaks 2 cells apart on a noiseless map: a 3x3 window sees both,
+    # a 7x7 window keeps only the larger
+    hm = np.zeros((1, 16, 16))
+    hm[0, 8, 6] = 1.0
+    hm[0, 8, 8] = 0.9
+    p = np.array([1.0, 0.9]) / 1.9
+    assert multipeak_entropy(hm, window=3)[0] == pytest.approx(-(p * np.log(p)).sum())
+    assert multipeak_entropy(hm, window=7)[0] == 0.0
+
+
+def test_entropy_zero_heatmap_is_nan_and_nan_values_are_ignored():
+    hm = np.zeros((2, 16, 16))
+    hm[1] = gaussian(7.0, 7.0, 16, 16)
+    hm[1, 0, 0] = np.nan
+    e = multipeak_entropy(hm)
+    assert np.isnan(e[0])
+    assert e[1] == 0.0
