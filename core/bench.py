@@ -97,3 +97,29 @@ def run(what: str, args=None):
         bench_export(n or 10_000)
     if what in ("open", "all"):
         bench_open(n or 100_000)
+    if what in ("rank", "all"):
+        bench_rank()
+
+
+def bench_rank(sizes=(10_000, 30_000, 100_000), batch: int = 200, dim: int = 34):
+    """Selection cost on random pools (pose-feature sized vectors): should grow as frames x batch."""
+    from .ranking import RankingQueue, RankWeights
+    rng = np.random.default_rng(0)
+    rows = []
+    for n in sizes:
+        X = rng.normal(size=(n, dim))
+        u = rng.uniform(size=n)
+        media = rng.integers(0, max(1, n // 300), n)
+        index = rng.integers(0, 9000, n)
+        lab = rng.normal(size=(100, dim))
+        t0 = time.perf_counter()
+        q = RankingQueue(X, u, media, index, RankWeights(), lab)
+        picks = q.select(batch)
+        dt = time.perf_counter() - t0
+        rows.append((n, dt, len(picks)))
+        print(f"rank: {n:>7} candidates, batch {batch}: {dt:.3f} s "
+              f"({dt / (n * batch) * 1e9:.2f} ns per frame x pick)")
+    if len(rows) > 1:
+        (n0, t0_, _), (n1, t1, _) = rows[0], rows[-1]
+        print(f"rank: time ratio {rows[-1][0]}/{rows[0][0]} = {t1 / t0_:.1f}x for {n1 / n0:.0f}x the frames "
+              f"(linear would be {n1 / n0:.0f}x); goal: 100k x 200 in <= 2 s")

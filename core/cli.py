@@ -122,6 +122,36 @@ def cmd_relink(a):
         print(ops.relink(p, a.media, a.path, user=a.user).message)
 
 
+def cmd_propose(a):
+    from . import ops
+    with _open(a.dir) as p:
+        ch, rep = ops.propose(p, frames=a.frames, workers=a.workers, progress=ProgressBar())
+    print(ch.message)
+    for fid, msg in rep.failed[:10]:
+        print(f"  frame {fid}: {msg}")
+    if rep.failed and rep.proposed == 0:
+        return 2
+
+
+def cmd_rank(a):
+    from . import ops
+    with _open(a.dir) as p:
+        entries = ops.rank(p, a.batch)
+        names = {m.id: m.display_name for m in p.store.all_media()}
+    if not entries:
+        print("the queue is empty: every frame is labelled")
+    for n, e in enumerate(entries, 1):
+        print(f"{n:>4}. frame {e.frame_id:<6} {names.get(e.media_id, e.media_id)} #{e.frame_index:<6} "
+              f"score {e.score:.2f}  {'; '.join(e.reasons)}")
+
+
+def cmd_adapt(a):
+    from . import ops
+    with _open(a.dir) as p:
+        ch, corr = ops.adapt(p)
+    print(ch.message)
+
+
 def cmd_bench(a):
     from . import bench
     bench.run(a.what, a)
@@ -181,8 +211,23 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("path", nargs="?", help="new location of the file")
     s.set_defaults(fn=cmd_relink)
 
+    s = sub.add_parser("propose", help="pre-fill frames with the pose model (resumable)")
+    s.add_argument("dir")
+    s.add_argument("--frames", default="unlabelled", choices=["unlabelled", "all"])
+    s.add_argument("--workers", type=int, default=1, help="parallel model workers (each with its own session)")
+    s.set_defaults(fn=cmd_propose)
+
+    s = sub.add_parser("rank", help="the frames most worth labelling next, with reasons")
+    s.add_argument("dir")
+    s.add_argument("--batch", type=int, default=50)
+    s.set_defaults(fn=cmd_rank)
+
+    s = sub.add_parser("adapt", help="refit the per-project correction of proposals from accepted labels")
+    s.add_argument("dir")
+    s.set_defaults(fn=cmd_adapt)
+
     s = sub.add_parser("bench", help="measure speed and memory; prints figures")
-    s.add_argument("what", choices=["export", "open", "all"])
+    s.add_argument("what", choices=["export", "open", "rank", "all"])
     s.add_argument("--frames", type=int, default=None, help="override the benchmark size")
     s.set_defaults(fn=cmd_bench)
     return ap

@@ -327,3 +327,27 @@ def import_coco(project: Project, file: str | Path, images_root: str | Path, *, 
     if plan.notices:
         msg += f"; ignored {len(plan.notices)} non-person or crowd record(s)"
     return Changes(media=tuple(media_ids), annotations=tuple(ann_ids), message=msg), plan
+
+
+# ---- proposals ----------------------------------------------------------------------
+
+def propose(project: Project, *, frames: str = "unlabelled", frame_ids=None, workers: int = 1,
+            progress=None, cancel=None, adapter=None):
+    """Pre-fill frames with the project's pose model (see :mod:`.prefill`). Returns (Changes, report)."""
+    from .prefill import prefill
+    return prefill(project, frames=frames, frame_ids=frame_ids, workers=workers, progress=progress,
+                   cancel=cancel, adapter=adapter)
+
+
+# ---- queue and adaptation --------------------------------------------------------------
+
+def rank(project: Project, batch: int = 50):
+    """The ranked queue (see :mod:`.ranking`): a list of QueueEntry with plain-words reasons."""
+    from .ranking import rank_queue
+    return rank_queue(project, batch)
+
+
+def adapt(project: Project, *, with_embedding: bool = True):
+    """Refit the per-project correction (see :mod:`.adapt`). Returns (Changes, Correction)."""
+    from .adapt import fit_project
+    return fit_project(project, with_embedding=with_embedding)

@@ -1,0 +1,349 @@
+"""Per-project adaptation: a light correction of the model's proposals learnt from accepted labels.
+
+Method: ridge regression (Hoerl & Kennard, "Ridge Regression: Biased
+Estimation for Nonorthogonal Problems", Technometrics 1970), one small model
+per joint, from the proposal in crop coordinates (every joint's x, y and
+confidence, plus the appearance embedding when there is one) to that joint's
+residual (label minus proposal) in crop coordinates. Crop coordinates are the
+proposal's own region, rotated upright and divided by its size, so one
+correction serves people of any size anywhere in the frame.
+
+The regularisation is chosen by cross-validation grouped by participant
+(leave-one-participant-out when there are enough participants): every error
+figure here is measured on people the fit did not see. A joint keeps its
+correction only when it beats the raw model on those held-out people;
+otherwise that joint falls back to the raw model. Human points are never
+touched: the correction only changes what pre-fill proposes.
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import KinemarkError
+from .model import ACCEPTED, IN_REVIEW, PREFILLED, Changes
+
+LAMBDAS = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0, 300.0, 1000.0)
+MIN_FRAMES = 8
+
+
+# ---- crop coordinates -----------------------------------------------------------------
+
+def to_crop(xy: np.ndarray, region: dict) -> np.ndarray:
+    """Frame pixels -> region coordinates: upright, centred, in units of the region's size."""
+    c, s = np.cos(region["angle"]), np.sin(region["angle"])
+    d = np.asarray(xy, float) - [region["cx"], region["cy"]]
+    u = (c * d[..., 0] + s * d[..., 1]) / region["w"]
+    v = (-s * d[..., 0] + c * d[..., 1]) / region["h"]
+    return np.stack([u, v], axis=-1)
+
+
+def from_crop(uv: np.ndarray, region: dict) -> np.ndarray:
+    c, s = np.cos(region["angle"]), np.sin(region["angle"])
+    u = np.asarray(uv, float)[..., 0] * region["w"]
+    v = np.asarray(uv, float)[..., 1] * region["h"]
+    return np.stack([region["cx"] + c * u - s * v, region["cy"] + s * u + c * v], axis=-1)
+
+
+def features(kps_crop: np.ndarray, confidence: np.ndarray, embedding: np.ndarray | None) -> np.ndarray:
+    """One row per sample: every joint's crop x, y, its confidence, and the embedding."""
+    n = len(kps_crop)
+    parts = [np.nan_to_num(kps_crop.reshape(n, -1)), np.nan_to_num(confidence.reshape(n, -1))]
+    if embedding is not None:
+        parts.append(np.nan_to_num(embedding.reshape(n, -1)))
+    return np.hstack(parts)
+
+
+# ---- the regression -------------------------------------------------------------------
+
+def ridge_fit(X: np.ndarray, Y: np.ndarray, lam: float):
+    """Ridge with an unpenalised intercept, on standardised features. Returns (mean, scale, W, b)."""
+    mu = X.mean(axis=0)
+    sd = X.std(axis=0)
+    sd[sd < 1e-12] = 1.0
+    Z = (X - mu) / sd
+    ym = Y.mean(axis=0)
+    A = Z.T @ Z + lam * np.eye(Z.shape[1])
+    W = np.linalg.solve(A, Z.T @ (Y - ym))
+    return mu, sd, W, ym
+
+
+def ridge_predict(model, X):
+    mu, sd, W, b = model
+    return ((X - mu) / sd) @ W + b
+
+
+@dataclass
+class Samples:
+    """Training data in crop coordinates.
+
+    X: (N, F) features; R: (N, K, 2) residuals (NaN where the label has no
+    point or the model does not cover it); groups: (N,) participant codes;
+    area: (N,) object area s² in crop units (for OKS); vis: (N, K) truth visibility.
+    """
+
+    X: np.ndarray
+    R: np.ndarray
+    groups: np.ndarray
+    area: np.ndarray
+    vis: np.ndarray
+
+
+def _folds(groups: np.ndarray, max_folds: int = 6):
+    uniq = sorted(set(groups.tolist()))
+    if len(uniq) >= 2:
+        k = min(len(uniq), max_folds)
+        return [np.isin(groups, uniq[i::k]) for i in range(k)]
+    return []
+
+
+def _sim(err2: np.ndarray, area: np.ndarray, sigmas: np.ndarray) -> np.ndarray:
+    """Per-keypoint OKS similarity from squared errors (pycocotools' form: k = 2σ, s² = area)."""
+    return np.exp(-err2 / ((2 * sigmas) ** 2)[None, :] / (area[:, None] + np.spacing(1)) / 2)
+
+
+@dataclass
+class Correction:
+    """A fitted per-project correction (or the decision not to use one)."""
+
+    model_hash: str
+    use: np.ndarray                 # (K,) bool: joints whose correction beat the raw model
+    models: dict = field(default_factory=dict)    # joint -> (mu, sd, W, b)
+    lam: dict = field(default_factory=dict)
+    heldout_raw: dict = field(default_factory=dict)       # joint -> mean squared error, raw
+    heldout_adapted: dict = field(default_factory=dict)   # joint -> mean squared error, adapted
+    summary: dict = field(default_factory=dict)
+    with_embedding: bool = False
+
+    @property
+    def active(self) -> bool:
+        return bool(np.any(self.use))
+
+    def predict_residual(self, X: np.ndarray, K: int) -> np.ndarray:
+        out = np.zeros((len(X), K, 2))
+        for j, m in self.models.items():
+            if self.use[j]:
+                out[:, j] = ridge_predict(m, X)
+        return out
+
+    def to_json(self) -> str:
+        return json.dumps({
+            "model_hash": self.model_hash, "use": self.use.astype(int).tolist(),
+            "models": {str(j): [a.tolist() for a in m] for j, m in self.models.items()},
+            "lam": {str(j): v for j, v in self.lam.items()},
+            "heldout_raw": {str(j): v for j, v in self.heldout_raw.items()},
+            "heldout_adapted": {str(j): v for j, v in self.heldout_adapted.items()},
+            "summary": self.summary, "with_embedding": self.with_embedding})
+
+    @classmethod
+    def from_json(cls, text: str) -> "Correction":
+        d = json.loads(text)
+        return cls(model_hash=d["model_hash"], use=np.array(d["use"], bool),
+                   models={int(j): tuple(np.array(a) for a in m) for j, m in d["models"].items()},
+                   lam={int(j): v for j, v in d["lam"].items()},
+                   heldout_raw={int(j): v for j, v in d["heldout_raw"].items()},
+                   heldout_adapted={int(j): v for j, v in d["heldout_adapted"].items()},
+                   summary=d.get("summary", {}), with_embedding=d.get("with_embedding", False))
+
+
+def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
+                   lambdas=LAMBDAS, min_frames: int = MIN_FRAMES) -> Correction:
+    """Fit per-joint ridge corrections with participant-grouped cross-validation.
+
+    A joint's correction is kept only if its held-out mean squared error is
+    below the raw model's on the same held-out frames.
+    """
+    N, K, _ = s.R.shape
+    folds = _folds(s.groups)
+    corr = Correction(model_hash=model_hash, use=np.zeros(K, bool))
+    if N < min_frames or not folds:
+        corr.summary = {"frames": int(N), "participants": int(len(set(s.groups.tolist()))),
+                        "reason": (f"needs at least {min_frames} labelled frames with proposals from at "
+                                   f"least 2 participants")}
+        return corr
+    for j in range(K):
+        ok = np.isfinite(s.R[:, j]).all(axis=1)
+        if ok.sum() < min_frames:
+            continue
+        best = None
+        for lam in lambdas:
+            se_raw, se_fit, n = 0.0, 0.0, 0
+            for test in folds:
+                tr, te = ok & ~test, ok & test
+                if tr.sum() < 3 or te.sum() == 0:
+                    continue
+                m = ridge_fit(s.X[tr], s.R[tr, j], lam)
+                pred = ridge_predict(m, s.X[te])
+                se_fit += float(((s.R[te, j] - pred) ** 2).sum())
+                se_raw += float((s.R[te, j] ** 2).sum())
+                n += int(te.sum())
+            if n == 0:
+                continue
+            if best is None or se_fit < best[1]:
+                best = (lam, se_fit / n, se_raw / n)
+        if best is None:
+            continue
+        lam, mse_fit, mse_raw = best
+        corr.lam[j] = lam
+        corr.heldout_raw[j] = mse_raw
+        corr.heldout_adapted[j] = mse_fit
+        if mse_fit < mse_raw:
+            corr.use[j] = True
+            corr.models[j] = ridge_fit(s.X[ok], s.R[ok, j], lam)
+    corr.summary = {"frames": int(N), "participants": int(len(set(s.groups.tolist()))),
+                    "joints_corrected": int(corr.use.sum()),
+                    "heldout_mse_raw": float(np.mean(list(corr.heldout_raw.values()) or [np.nan])),
+                    "heldout_mse_adapted": float(np.mean([corr.heldout_adapted[j] if corr.use[j] else corr.heldout_raw[j]
+                                                          for j in corr.heldout_raw] or [np.nan]))}
+    return corr
+
+
+def evaluate(corr: Correction | None, s: Samples, sigmas: np.ndarray) -> dict:
+    """Mean OKS-style similarity and joints needing a move, raw vs corrected, on samples ``s``."""
+    N, K, _ = s.R.shape
+    pred = corr.predict_residual(s.X, K) if corr is not None else np.zeros((N, K, 2))
+    lab = s.vis > 0
+    err_raw = np.nansum(s.R ** 2, axis=2)
+    err_fit = np.nansum((s.R - pred) ** 2, axis=2)
+    missing = ~np.isfinite(s.R).all(axis=2) & lab
+    sim_raw, sim_fit = _sim(err_raw, s.area, sigmas), _sim(err_fit, s.area, sigmas)
+    move_raw = ((sim_raw < 0.5) & lab) | missing
+    move_fit = ((sim_fit < 0.5) & lab) | missing
+    n_lab = np.maximum(lab.sum(axis=1), 1)
+    return {"frames": int(N),
+            "oks_raw": float(np.mean(np.where(lab & ~missing, sim_raw, 0).sum(1) / n_lab)),
+            "oks_adapted": float(np.mean(np.where(lab & ~missing, sim_fit, 0).sum(1) / n_lab)),
+            "moves_raw": float(move_raw.sum(1).mean()), "moves_adapted": float(move_fit.sum(1).mean())}
+
+
+# ---- from a project ---------------------------------------------------------------------
+
+def samples_from(pairs, K: int, *, with_embedding: bool):
+    """Build Samples from (proposal, truth keypoints (K,3), truth area in pixels, group) tuples.
+
+    Proposals need a stored region (the crop they were predicted in).
+    """
+    X, R, G, A, V = [], [], [], [], []
+    for prop, truth, area_px, group in pairs:
+        if not prop.region:
+            continue
+        reg = prop.region
+        pc = to_crop(prop.keypoints[:, :2], reg)
+        tc = to_crop(np.asarray(truth)[:, :2], reg)
+        r = tc - pc
+        bad = (np.asarray(truth)[:, 2] <= 0) | (prop.confidence <= 0) | ~np.isfinite(r).all(axis=1)
+        r[bad] = np.nan
+        emb = prop.embedding if with_embedding else None
+        X.append(features(pc[None], np.asarray(prop.confidence)[None], None if emb is None else emb[None])[0])
+        R.append(r)
+        G.append(group)
+        A.append(area_px / (reg["w"] * reg["h"]))
+        V.append(np.asarray(truth)[:, 2])
+    if not X:
+        return Samples(np.zeros((0, 3 * K)), np.zeros((0, K, 2)), np.array([]), np.array([]), np.zeros((0, K)))
+    return Samples(np.array(X), np.array(R), np.array(G), np.array(A), np.array(V))
+
+
+class Corrector:
+    """Applies a Correction to fresh proposals at pre-fill time."""
+
+    def __init__(self, corr: Correction):
+        self.corr = corr
+
+    def apply(self, res, kps, sources):
+        reg = res.region
+        if reg is None or not self.corr.active:
+            return kps, sources
+        rd = {"cx": reg.cx, "cy": reg.cy, "w": reg.w, "h": reg.h, "angle": reg.angle} if not isinstance(reg, dict) else reg
+        return apply_to(self.corr, kps, res.confidence, res.embedding, rd, sources)
+
+
+def apply_to(corr: Correction, kps, confidence, embedding, region: dict, sources):
+    K = len(kps)
+    pc = to_crop(np.asarray(kps)[:, :2], region)
+    X = features(pc[None], np.asarray(confidence)[None],
+                 None if (embedding is None or not corr.with_embedding) else np.asarray(embedding)[None])
+    delta = corr.predict_residual(X, K)[0]
+    out = np.array(kps, float)
+    src = list(sources)
+    for j in range(K):
+        if corr.use[j] and out[j, 2] > 0:
+            out[j, :2] = from_crop(pc[j] + delta[j], region)
+            src[j] = "adapted"
+    return out, src
+
+
+def _pairs_from_project(project):
+    from .metrics import bbox_from_keypoints
+    store = project.store
+    media = {m.id: m for m in store.all_media()}
+    frames = {f.id: f for f in store.frames()}
+    pairs = []
+    for a in store.annotations([ACCEPTED, IN_REVIEW]):
+        if not any(src == "human" or src == "imported" for src in a.sources):
+            continue
+        prop = store.proposal(a.frame_id)
+        if prop is None or prop.adapted:
+            continue
+        bbox = a.bbox or bbox_from_keypoints(a.keypoints)
+        if bbox is None:
+            continue
+        m = media[frames[a.frame_id].media_id]
+        pairs.append((prop, a.keypoints, bbox[2] * bbox[3], m.participant_code or f"media-{m.id}"))
+    return pairs
+
+
+def fit_project(project, *, with_embedding: bool = True) -> tuple[Changes, Correction]:
+    """Refit the project's correction from its accepted and submitted labels, store it,
+    and re-apply it to frames still holding an untouched model proposal."""
+    pairs = _pairs_from_project(project)
+    if not pairs:
+        raise KinemarkError("no accepted or submitted labels with a model proposal yet: label some frames "
+                            "that the model pre-filled, then adapt")
+    hashes = {p.model_hash for p, *_ in pairs}
+    model_hash = max(hashes, key=lambda h: sum(p.model_hash == h for p, *_ in pairs))
+    pairs = [x for x in pairs if x[0].model_hash == model_hash]
+    K = project.skeleton.num_keypoints
+    use_emb = with_embedding and all(p.embedding is not None for p, *_ in pairs)
+    s = samples_from(pairs, K, with_embedding=use_emb)
+    corr = fit_correction(s, project.skeleton.sigma_array, model_hash)
+    corr.with_embedding = use_emb
+    project.store.set_meta("adaptation", corr.to_json(), user_id=project.user().id)
+    changed = reapply(project, corr) if corr.active else ()
+    names = [project.skeleton.keypoints[j] for j in np.flatnonzero(corr.use)]
+    if corr.active:
+        msg = (f"adapted {len(names)} of {K} joints from {s.R.shape[0]} labelled frames "
+               f"({corr.summary['participants']} participants); held-out squared error "
+               f"{corr.summary['heldout_mse_raw']:.5f} -> {corr.summary['heldout_mse_adapted']:.5f} "
+               f"(crop units); re-proposed {len(changed)} untouched frame(s)")
+    else:
+        msg = ("kept the raw model: " + corr.summary.get("reason", "no joint's correction beat the raw model "
+                                                         "on held-out participants"))
+    return Changes(annotations=tuple(changed), message=msg, details={"summary": corr.summary,
+                                                                     "joints": names}), corr
+
+
+def load_correction(project, model_hash: str) -> Correction | None:
+    text = project.store.get_meta("adaptation")
+    if not text:
+        return None
+    corr = Correction.from_json(text)
+    return corr if corr.model_hash == model_hash and corr.active else None
+
+
+def reapply(project, corr: Correction) -> list[int]:
+    """Re-pre-fill frames whose annotation is still the untouched model proposal."""
+    store = project.store
+    changed = []
+    for a in store.annotations([PREFILLED]):
+        if not set(a.sources) <= {"model", "adapted"}:
+            continue
+        prop = store.proposal(a.frame_id, model_hash=corr.model_hash)
+        if prop is None or not prop.region:
+            continue
+        kps, src = apply_to(corr, prop.keypoints, prop.confidence, prop.embedding, prop.region,
+                            ["model"] * len(prop.keypoints))
+        changed.append(store.save_annotation(a.frame_id, kps, src, state=PREFILLED, action="adapt").id)
+    return changed

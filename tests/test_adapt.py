@@ -1,0 +1,96 @@
+import numpy as np
+import pytest
+
+from kinemark.core.adapt import (Correction, Samples, apply_to, evaluate, fit_correction, from_crop,
+                                 to_crop)
+from kinemark.core.skeleton import COCO17
+
+SIG = COCO17.sigma_array
+
+
+def _synthetic(n_per=20, groups=("A", "B", "C", "D"), offset=(0.03, -0.02), noise=0.004, seed=0,
+               embed_dim=0):
+    """Invented test data: proposals whose joints 9 and 10 (wrists) sit a fixed offset from the truth."""
+    rng = np.random.default_rng(seed)
+    N, K = n_per * len(groups), 17
+    pc = rng.uniform(-0.4, 0.4, (N, K, 2))
+    conf = rng.uniform(0.3, 1.0, (N, K))
+    R = rng.normal(0, noise, (N, K, 2))
+    R[:, [9, 10]] += offset
+    X = np.hstack([pc.reshape(N, -1), conf])
+    if embed_dim:
+        X = np.hstack([X, rng.normal(size=(N, embed_dim))])
+    g = np.repeat(np.array(groups), n_per)
+    return Samples(X=X, R=R, groups=g, area=np.full(N, 0.3), vis=np.full((N, K), 2.0))
+
+
+def test_crop_coordinates_round_trip():
+    reg = {"cx": 310.0, "cy": 205.0, "w": 180.0, "h": 180.0, "angle": 0.6}
+    xy = np.random.default_rng(0).uniform(0, 600, (17, 2))
+    np.testing.assert_allclose(from_crop(to_crop(xy, reg), reg), xy, atol=1e-9)
+    # the region's centre is the origin; a point one region-width along the region's x axis is (1, 0)
+    p = np.array([reg["cx"] + np.cos(0.6) * 180, reg["cy"] + np.sin(0.6) * 180])
+    np.testing.assert_allclose(to_crop(p, reg), [1.0, 0.0], atol=1e-12)
+
+
+def test_removes_a_planted_systematic_offset():
+    train = _synthetic(seed=1)
+    test = _synthetic(seed=2, groups=("E", "F"))
+    corr = fit_correction(train, SIG)
+    assert corr.use[9] and corr.use[10]
+    before = evaluate(None, test, SIG)
+    after = evaluate(corr, test, SIG)
+    # the residual left on the wrists is about the noise, not the planted offset
+    pred = corr.predict_residual(test.X, 17)
+    left = np.abs(test.R[:, [9, 10]] - pred[:, [9, 10]]).mean()
+    assert left < 0.01 < np.abs(test.R[:, [9, 10]]).mean()
+    assert after["oks_adapted"] > before["oks_raw"]
+
+
+def test_rejected_when_it_would_make_things_worse():
+    # no systematic error at all: pure noise residuals. Fitting noise must not beat the raw model
+    # on held-out participants for (nearly) any joint; where it does not, the joint stays raw.
+    s = _synthetic(offset=(0.0, 0.0), noise=0.02, seed=3, embed_dim=40)
+    corr = fit_correction(s, SIG)
+    assert corr.use.sum() <= 2
+    for j in range(17):
+        if not corr.use[j]:
+            assert j not in corr.models
+        else:
+            assert corr.heldout_adapted[j] < corr.heldout_raw[j]
+
+
+def test_needs_more_than_one_participant():
+    s = _synthetic(groups=("A",))
+    corr = fit_correction(s, SIG)
+    assert not corr.active and "2 participants" in corr.summary["reason"]
+
+
+def test_held_out_participants_never_reach_the_fit():
+    """Fitting on the training participants only: changing the held-out people's data changes nothing."""
+    full = _synthetic(seed=5, groups=("A", "B", "C", "D", "E"))
+    train_mask = np.isin(full.groups, ["A", "B", "C"])
+
+    def subset(s, m):
+        return Samples(s.X[m], s.R[m], s.groups[m], s.area[m], s.vis[m])
+    c1 = fit_correction(subset(full, train_mask), SIG)
+    tampered = Samples(full.X.copy(), full.R.copy(), full.groups, full.area, full.vis)
+    tampered.R[~train_mask] += 5.0
+    tampered.X[~train_mask] *= -3
+    c2 = fit_correction(subset(tampered, train_mask), SIG)
+    for j in c1.models:
+        for a, b in zip(c1.models[j], c2.models[j]):
+            np.testing.assert_array_equal(a, b)
+
+
+def test_json_round_trip_and_apply():
+    corr = fit_correction(_synthetic(seed=7), SIG, "h")
+    back = Correction.from_json(corr.to_json())
+    reg = {"cx": 100.0, "cy": 100.0, "w": 200.0, "h": 200.0, "angle": 0.0}
+    kps = np.column_stack([np.linspace(20, 180, 17), np.linspace(30, 170, 17), np.full(17, 2)])
+    kps[0, 2] = 0
+    a, sa = apply_to(corr, kps, np.full(17, 0.8), None, reg, ["model"] * 17)
+    b, sb = apply_to(back, kps, np.full(17, 0.8), None, reg, ["model"] * 17)
+    np.testing.assert_allclose(a, b)
+    assert sa[9] == "adapted" and sa[0] == "model"           # uncorrected / absent joints stay as they are
+    assert a[9, 0] - kps[9, 0] == pytest.approx(0.03 * 200, abs=2.0)   # the planted offset, in pixels

@@ -1,0 +1,145 @@
+import itertools
+
+import numpy as np
+import pytest
+
+from kinemark.core.ranking import (RankingQueue, RankWeights, _percentile_rank, joint_uncertainty,
+                                   normalise_poses, pose_features)
+from kinemark.core.skeleton import COCO17
+
+NOVELTY_ONLY = RankWeights(uncertainty=0.0, novelty=1.0, same_clip_decay=0.0, dedup_window=-1,
+                           novelty_cap=1e9)
+
+
+def _kcenter_bruteforce(X, k, labelled=()):
+    """Reference k-center greedy (Gonzalez 1985; the core-set step of Sener & Savarese, ICLR 2018),
+    written from the definition with a full distance matrix."""
+    D = np.sqrt(((X[:, None, :] - X[None, :, :]) ** 2).sum(-1))
+    chosen = list(labelled)
+    out = []
+    for _ in range(k):
+        if chosen:
+            mind = D[:, chosen].min(axis=1)
+        else:
+            mind = np.full(len(X), np.inf)
+        mind[chosen] = -1
+        if not chosen:
+            # with nothing labelled every point is infinitely novel: any first pick is valid;
+            # follow the queue's own tie-breaking by returning None
+            return None
+        i = int(np.argmax(mind))
+        out.append(i)
+        chosen.append(i)
+    return out
+
+
+def test_k_center_greedy_matches_bruteforce():
+    rng = np.random.default_rng(3)
+    for trial in range(20):
+        X = rng.normal(size=(30, 4))
+        lab = [0, 1]
+        q = RankingQueue(X, np.zeros(30), np.arange(30), np.zeros(30), NOVELTY_ONLY, labelled_feats=X[lab])
+        q.excluded[lab] = True
+        picks = [p[0] for p in q.select(6)]
+        assert picks == _kcenter_bruteforce(X, 6, lab), trial
+
+
+def test_k_center_greedy_is_within_twice_the_optimal_radius():
+    """Gonzalez (1985): greedy farthest-point k-center is a 2-approximation. Optimum by brute force."""
+    rng = np.random.default_rng(5)
+    for trial in range(10):
+        X = rng.uniform(size=(11, 2))
+        k = 3
+        q = RankingQueue(X, np.zeros(11), np.arange(11), np.zeros(11), NOVELTY_ONLY)
+        picks = [p[0] for p in q.select(k)]
+        D = np.sqrt(((X[:, None] - X[None]) ** 2).sum(-1))
+        greedy_r = D[:, picks].min(axis=1).max()
+        opt_r = min(D[:, list(c)].min(axis=1).max() for c in itertools.combinations(range(11), k))
+        assert greedy_r <= 2 * opt_r + 1e-12
+
+
+def test_ranking_is_deterministic_for_a_seed():
+    rng = np.random.default_rng(0)
+    X, u = rng.normal(size=(200, 6)), rng.uniform(size=200)
+    media, index = rng.integers(0, 5, 200), rng.integers(0, 300, 200)
+    a = RankingQueue(X, u, media, index, RankWeights(seed=4)).select(40)
+    b = RankingQueue(X, u, media, index, RankWeights(seed=4)).select(40)
+    assert a == b
+
+
+def test_batch_has_no_near_duplicates():
+    rng = np.random.default_rng(1)
+    n = 400
+    # two clips, slowly varying poses: neighbours in time are near-duplicates
+    media = np.repeat([0, 1], n // 2)
+    index = np.tile(np.arange(n // 2), 2)
+    X = np.cumsum(rng.normal(scale=0.02, size=(n, 8)), axis=0)
+    w = RankWeights(dedup_window=10, dedup_distance=0.3)
+    picks = [p[0] for p in RankingQueue(X, rng.uniform(size=n), media, index, w).select(60)]
+    for i, j in itertools.combinations(picks, 2):
+        if media[i] == media[j] and abs(index[i] - index[j]) <= w.dedup_window:
+            assert np.linalg.norm(X[i] - X[j]) > w.dedup_distance
+
+
+def test_diminishing_returns_spread_a_batch_over_clips():
+    rng = np.random.default_rng(2)
+    n = 300
+    media = np.repeat(np.arange(6), n // 6)
+    index = np.tile(np.arange(n // 6) * 20, 6)
+    u = rng.uniform(size=n) * 0.2
+    u[media == 0] += 0.8            # one clip is much more uncertain than the rest
+    X = rng.normal(size=(n, 4))
+    picks = [p[0] for p in RankingQueue(X, u, media, index, RankWeights(novelty=0.0)).select(30)]
+    counts = np.bincount(media[picks], minlength=6)
+    assert counts[0] < 30 and (counts > 0).sum() >= 4
+    flat = [p[0] for p in RankingQueue(X, u, media, index,
+                                       RankWeights(novelty=0.0, same_clip_decay=0.0)).select(30)]
+    assert np.bincount(media[flat], minlength=6)[0] == 30   # without the decay: all from one clip
+
+
+def test_incremental_update_equals_rebuild():
+    rng = np.random.default_rng(8)
+    X, u = rng.normal(size=(150, 5)), rng.uniform(size=150)
+    media, index = rng.integers(0, 4, 150), rng.integers(0, 1000, 150)
+    lab0 = rng.normal(size=(5, 5))
+    q = RankingQueue(X, u, media, index, RankWeights(), lab0)
+    q.mark_labelled([3, 40, 77])
+    fresh = RankingQueue(X, u, media, index, RankWeights(), np.vstack([lab0, X[[3, 40, 77]]]))
+    fresh.excluded[[3, 40, 77]] = True
+    assert q.select(20) == fresh.select(20)
+    assert not {3, 40, 77} & {p[0] for p in q.select(20)}
+
+
+def test_normalised_pose_is_invariant_to_shift_scale_rotation_and_mirror():
+    rng = np.random.default_rng(0)
+    k = np.column_stack([rng.uniform(100, 300, 17), rng.uniform(100, 400, 17), np.full(17, 2)])
+    base = normalise_poses(k[None], COCO17)[0]
+    a = np.deg2rad(25)
+    R = np.array([[np.cos(a), -np.sin(a)], [np.sin(a), np.cos(a)]])
+    k2 = k.copy()
+    k2[:, :2] = (k[:, :2] @ R.T) * 1.7 + [40, -13]
+    np.testing.assert_allclose(normalise_poses(k2[None], COCO17)[0], base, atol=1e-9)
+    # the mirrored image of the same person (x -> -x, left/right names swapped) maps to the same pose
+    m = k.copy()
+    m[:, 0] = 1000 - m[:, 0]
+    m = m[COCO17.flip_permutation()]
+    np.testing.assert_allclose(normalise_poses(m[None], COCO17)[0], base, atol=1e-9)
+    # torso: mid-hip at the origin, mid-shoulder one unit straight up
+    hips, sh = base[[11, 12]].mean(0), base[[5, 6]].mean(0)
+    np.testing.assert_allclose(hips, [0, 0], atol=1e-12)
+    np.testing.assert_allclose(sh, [0, -1], atol=1e-12)
+
+
+def test_missing_points_do_not_break_features():
+    k = np.zeros((2, 17, 3))
+    k[1, :, :2] = 50; k[1, :, 2] = 2
+    f = pose_features(k, COCO17)
+    assert np.isfinite(f).all()
+
+
+def test_uncertainty_by_percentile():
+    assert list(_percentile_rank(np.array([3.0, 1.0, 2.0, np.nan]))[:3]) == [1.0, 0.0, 0.5]
+    sig = {"flip_disagreement": np.array([[0.0, 1.0], [0.5, 0.2]])}
+    conf = np.array([[1.0, 0.1], [0.9, 0.8]])
+    u = joint_uncertainty(sig, conf)
+    assert u[0, 1] == pytest.approx(1.0) and u[0, 0] == pytest.approx(0.0)
