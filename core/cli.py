@@ -98,10 +98,59 @@ def cmd_info(a):
 
 def cmd_export(a):
     from . import ops
+    bundle = a.bundle or a.split is not None or a.seed is not None or a.deidentify
+    if bundle:
+        if a.format != "coco" or a.images_to:
+            raise KinemarkError("a bundle (--bundle, --split, --seed, --deidentify) is COCO with its images "
+                                "inside; it takes neither --format coco-results nor --images-to")
+        from .export import DEFAULT_RATIOS, export_bundle
+        with _open(a.dir) as p:
+            ch = export_bundle(p, a.out, states=a.states, ratios=a.split or DEFAULT_RATIOS,
+                               seed=a.seed or 0, deidentify=a.deidentify, user=a.user, progress=ProgressBar())
+        print(ch.message)
+        print(CAUTION)
+        return
     with _open(a.dir) as p:
         ch = ops.export_coco(p, a.out, states=a.states, fmt=a.format, images_to=a.images_to,
                              progress=ProgressBar())
     print(ch.message)
+
+
+def cmd_check(a):
+    from . import qa
+    with _open(a.dir) as p:
+        required = None
+        if a.require is not None:
+            required = [p.skeleton.index(n.strip()) for n in a.require.split(",") if n.strip()]
+        flags = qa.run_checks(p, states=a.states, required=required)
+        frames = {f.id: f for f in p.store.frames()}
+        media = {m.id: m for m in p.store.all_media()}
+        for fl in flags:
+            f = frames[fl.frame_id]
+            m = media[f.media_id]
+            who = m.participant_code or "-"
+            print(f"frame {fl.frame_id} ({who} {m.display_name} #{f.frame_index}) person {fl.person} "
+                  f"{fl.severity} {fl.check}: {fl.message}")
+        n_err = sum(fl.severity == qa.ERROR for fl in flags)
+        n_ann = len({fl.annotation_id for fl in flags})
+        print(f"{len(flags)} flag(s) on {n_ann} annotation(s): {n_err} error(s), {len(flags) - n_err} warning(s)")
+    return 1 if (a.strict and n_err) else 0
+
+
+def cmd_agreement(a):
+    from . import agreement
+    with _open(a.dir) as p:
+        if a.pick:
+            print(agreement.choose_frames(p, share=a.share, seed=a.seed, user=a.user).message)
+            return
+        rep = agreement.build_report(p)
+    print(agreement.format_text(rep))
+    if a.html or a.csv:
+        from .report import write_report
+        h, c = write_report(rep, a.html, a.csv)
+        for path in (h, c):
+            if path is not None:
+                print(f"wrote {path}")
 
 
 def cmd_import(a):
@@ -152,6 +201,26 @@ def cmd_adapt(a):
     print(ch.message)
 
 
+def cmd_demo(a):
+    from .demo import run_demo
+    out = Path(a.out)
+    clips = Path(a.clips) if a.clips else out / "clips"
+    if not a.clips and not (clips / "scenario.json").exists() and a.size == "demo":
+        shipped = Path("sample_project") / "clips"
+        if (shipped / "scenario.json").exists():
+            clips = shipped
+    print(CAUTION)
+    summary = run_demo(out, clips_dir=clips, size=a.size, seed=a.seed, label=a.label, every=a.every,
+                       progress_factory=lambda: ProgressBar())
+    print(summary.text())
+
+
+def cmd_open(a):
+    # the desktop workspace lives in kinemark.app; imported only here, so core never loads Qt
+    from ..app.main import run
+    return run(a.dir, screenshot=a.screenshot)
+
+
 def cmd_bench(a):
     from . import bench
     bench.run(a.what, a)
@@ -192,7 +261,32 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--states", nargs="+", default=[ACCEPTED], choices=STATES)
     s.add_argument("--format", default="coco", choices=["coco", "coco-results"])
     s.add_argument("--images-to", help="also write the frames as PNG files into this folder")
+    s.add_argument("--bundle", action="store_true",
+                   help="write a bundle folder OUT: COCO per split, frames, tables, manifest")
+    s.add_argument("--split", nargs=3, type=float, metavar=("TRAIN", "VAL", "TEST"),
+                   help="bundle: participant-level split ratios (default 0.7 0.15 0.15)")
+    s.add_argument("--seed", type=int, help="bundle: seed of the participant split (default 0)")
+    s.add_argument("--deidentify", action="store_true",
+                   help="bundle: blur faces, pseudonymous names, no original names, paths or dates")
     s.set_defaults(fn=cmd_export)
+
+    s = sub.add_parser("check", help="run the QA checks and print their flags")
+    s.add_argument("dir")
+    s.add_argument("--states", nargs="+", choices=STATES,
+                   help="states to check (default: everything a person has touched)")
+    s.add_argument("--require", help="comma-separated keypoints that must be labelled "
+                                     "(default: the project's setting, else shoulders and hips)")
+    s.add_argument("--strict", action="store_true", help="exit 1 when there is any error flag")
+    s.set_defaults(fn=cmd_check)
+
+    s = sub.add_parser("agreement", help="agreement figures: annotators, reviewer, model")
+    s.add_argument("dir")
+    s.add_argument("--html", help="write the report page here (a CSV of the numbers goes beside it)")
+    s.add_argument("--csv", help="write the numbers here (default: beside the HTML page)")
+    s.add_argument("--pick", action="store_true", help="choose the frames for double labelling, then stop")
+    s.add_argument("--share", type=float, default=0.10, help="with --pick: share of frames (default 0.10)")
+    s.add_argument("--seed", type=int, default=0, help="with --pick: seed of the choice (default 0)")
+    s.set_defaults(fn=cmd_agreement)
 
     s = sub.add_parser("import-coco", help="import a COCO keypoints file")
     s.add_argument("dir")
@@ -226,8 +320,23 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("dir")
     s.set_defaults(fn=cmd_adapt)
 
+    s = sub.add_parser("demo", help="the main job, headless, on the invented Quillon Bay clinic scenario")
+    s.add_argument("--out", default="sample_project", help="project folder (default: sample_project)")
+    s.add_argument("--clips", help="folder of scenario clips (default: OUT/clips; rendered if missing)")
+    s.add_argument("--size", default="demo", choices=["demo", "tiny"], help="tiny: a quick run for tests")
+    s.add_argument("--seed", type=int, default=7)
+    s.add_argument("--label", type=int, default=60, help="how many top-ranked frames the simulated annotator labels")
+    s.add_argument("--every", type=int, default=3, help="sample every Nth video frame")
+    s.set_defaults(fn=cmd_demo)
+
+    s = sub.add_parser("open", help="open the project in the desktop workspace")
+    s.add_argument("dir")
+    s.add_argument("--screenshot", metavar="FILE.png",
+                   help="render the window offscreen, save it to FILE.png and exit")
+    s.set_defaults(fn=cmd_open)
+
     s = sub.add_parser("bench", help="measure speed and memory; prints figures")
-    s.add_argument("what", choices=["export", "open", "rank", "all"])
+    s.add_argument("what", choices=["export", "open", "rank", "propose", "all"])
     s.add_argument("--frames", type=int, default=None, help="override the benchmark size")
     s.set_defaults(fn=cmd_bench)
     return ap

@@ -141,3 +141,33 @@ class Changes:
             skeleton=self.skeleton or other.skeleton,
             message="; ".join(m for m in (self.message, other.message) if m),
             details={**self.details, **other.details})
+
+
+# ---- review and agreement records -------------------------------------------------------
+
+@dataclass(frozen=True)
+class ReviewNote:
+    """A reviewer's note on one annotation, pinned to a keypoint (or to the whole pose)."""
+
+    id: int
+    annotation_id: int
+    keypoint: int | None          # skeleton index; None: about the pose as a whole
+    text: str
+    author_id: int | None
+    created_at: str
+    addressed_at: str | None = None   # set when the annotator resubmits
+    addressed_by: int | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class SecondLabel:
+    """An agreement label: a second annotator's keypoints on a frame, blind to the first."""
+
+    id: int
+    frame_id: int
+    person: int
+    keypoints: np.ndarray          # (K, 3)
+    labelled_by: int
+    version: int
+    created_at: str
+    updated_at: str

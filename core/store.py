@@ -23,7 +23,7 @@ import numpy as np
 
 from .errors import KinemarkError
 from .model import (ACCEPTED, ROLES, SOURCES, STATES, Annotation, Event, Frame, Media,
-                    Participant, Proposal, Session, User)
+                    Participant, Proposal, ReviewNote, SecondLabel, Session, User)
 from .skeleton import Skeleton
 
 DB_NAME = "project.kinemark.sqlite"
@@ -119,8 +119,43 @@ CREATE TRIGGER events_append_only_delete BEFORE DELETE ON events
 BEGIN SELECT RAISE(ABORT, 'the event log is append-only'); END;
 """
 
+# Version 2: the review loop and agreement labels. Reviewer notes pinned to a keypoint
+# of an annotation; the frames chosen for double labelling; the second annotator's
+# labels, kept apart from ``annotations`` so that the first annotator never sees them
+# (and no export picks them up); an index for reading one entity's events.
+_V2 = """
+CREATE TABLE review_notes (
+    id INTEGER PRIMARY KEY,
+    annotation_id INTEGER NOT NULL REFERENCES annotations(id),
+    keypoint INTEGER,
+    text TEXT NOT NULL,
+    author_id INTEGER REFERENCES users(id),
+    created_at TEXT NOT NULL,
+    addressed_at TEXT,
+    addressed_by INTEGER REFERENCES users(id)
+);
+CREATE INDEX review_notes_annotation ON review_notes(annotation_id);
+CREATE TABLE agreement_frames (
+    frame_id INTEGER PRIMARY KEY REFERENCES frames(id),
+    rank INTEGER NOT NULL,
+    chosen_at TEXT NOT NULL
+);
+CREATE TABLE second_labels (
+    id INTEGER PRIMARY KEY,
+    frame_id INTEGER NOT NULL REFERENCES frames(id),
+    person INTEGER NOT NULL DEFAULT 0,
+    keypoints TEXT NOT NULL,
+    labelled_by INTEGER NOT NULL REFERENCES users(id),
+    version INTEGER NOT NULL DEFAULT 1,
+    created_at TEXT NOT NULL,
+    updated_at TEXT NOT NULL,
+    UNIQUE (frame_id, person, labelled_by)
+);
+CREATE INDEX events_entity ON events(entity, entity_id);
+"""
+
 #: MIGRATIONS[i] upgrades a database at schema version i to version i + 1.
-MIGRATIONS: list[str] = [_V1]
+MIGRATIONS: list[str] = [_V1, _V2]
 
 
 def schema_version() -> int:
@@ -652,6 +687,199 @@ class Store:
     def frame_ids(self, media_id: int) -> dict[int, int]:
         return {idx: fid for fid, idx in self._db.execute(
             "SELECT id, frame_index FROM frames WHERE media_id=?", (media_id,))}
+
+    # ---- used by the workspace
+
+    def delete_annotation(self, annotation_id: int, *, user_id: int | None = None,
+                          action: str = "delete"):
+        """Remove one annotation (undo of a frame's first edit); the event log keeps what it held."""
+        with self.tx() as db:
+            before = self.annotation_by_id(annotation_id)
+            try:
+                db.execute("DELETE FROM annotations WHERE id=?", (annotation_id,))
+            except sqlite3.IntegrityError:
+                raise KinemarkError("this annotation has review notes or other records pointing at it; "
+                                    "it cannot be removed") from None
+            self._event(db, user_id, action, "annotation", annotation_id, self._ann_dict(before), None)
+
+    def annotation_states(self, frame_ids: Iterable[int] | None = None, person: int = 0) -> dict[int, str]:
+        """frame id -> annotation state for one person (frames without an annotation are left out)."""
+        rows = self._db.execute("SELECT frame_id, state FROM annotations WHERE person=?", (person,))
+        out = {fid: st for fid, st in rows}
+        if frame_ids is not None:
+            want = set(frame_ids)
+            out = {k: v for k, v in out.items() if k in want}
+        return out
+
+    # ---- review, QA and agreement -----------------------------------------------------
+    # The rules (who may do what, which state follows which) live in core/review.py and
+    # core/agreement.py; these methods only read and write, each write with its event row.
+
+    def log_event(self, action: str, entity: str, entity_id: int | None = None, before=None,
+                  after=None, *, user_id: int | None = None):
+        """Write one event row on its own (e.g. an export's settings), as one transaction."""
+        with self.tx() as db:
+            self._event(db, user_id, action, entity, entity_id, before, after)
+
+    def events_for(self, entity: str, ids: Iterable[int] | None = None, *,
+                   actions: Iterable[str] | None = None) -> list[Event]:
+        """The events of many entities of one kind at once, in log order."""
+        base = "SELECT id, at, user_id, action, entity, entity_id, before, after FROM events WHERE entity=?"
+        acts = list(actions) if actions is not None else None
+        tail, targs = "", []
+        if acts is not None:
+            tail = f" AND action IN ({','.join('?' * len(acts))})"
+            targs = acts
+        if ids is None:
+            return [Event(*r) for r in self._db.execute(base + tail + " ORDER BY id", [entity, *targs])]
+        ids = sorted({int(i) for i in ids})
+        out: list[Event] = []
+        for i in range(0, len(ids), 500):
+            chunk = ids[i:i + 500]
+            q = base + f" AND entity_id IN ({','.join('?' * len(chunk))})" + tail
+            out.extend(Event(*r) for r in self._db.execute(q, [entity, *chunk, *targs]))
+        out.sort(key=lambda e: e.id)
+        return out
+
+    def annotations_on_frame(self, frame_id: int) -> list[Annotation]:
+        """Every person's annotation on one frame, whatever its state."""
+        return [self._ann(r) for r in self._db.execute(
+            self._ANN_SELECT + " WHERE frame_id=? ORDER BY person", (frame_id,))]
+
+    def transition_state(self, annotation_id: int, to_state: str, *, from_state: str, transition: str,
+                         user_id: int | None, note: str | None = None) -> Annotation:
+        """Move an annotation from ``from_state`` to ``to_state``; refused if it is no longer in
+        ``from_state`` (someone else moved it). The event records the transition's name."""
+        if to_state not in STATES:
+            raise KinemarkError(f"unknown state {to_state!r}")
+        with self.tx() as db:
+            before = self.annotation_by_id(annotation_id)
+            if before.state != from_state:
+                raise KinemarkError(f"annotation {annotation_id} is now {before.state}, not {from_state}; "
+                                    "someone changed it meanwhile: reload it")
+            db.execute("UPDATE annotations SET state=?, version=version+1, updated_by=?, updated_at=?"
+                       " WHERE id=?", (to_state, user_id, now_iso(), annotation_id))
+            after = self.annotation_by_id(annotation_id)
+            self._event(db, user_id, "state", "annotation", annotation_id,
+                        {"state": before.state, "version": before.version},
+                        {"state": to_state, "version": after.version, "transition": transition,
+                         "note": note})
+        return after
+
+    _NOTE_SELECT = ("SELECT id, annotation_id, keypoint, text, author_id, created_at, addressed_at,"
+                    " addressed_by FROM review_notes")
+
+    def add_review_note(self, annotation_id: int, keypoint: int | None, text: str, *,
+                        user_id: int | None) -> ReviewNote:
+        with self.tx() as db:
+            cur = db.execute("INSERT INTO review_notes(annotation_id, keypoint, text, author_id, created_at)"
+                             " VALUES (?, ?, ?, ?, ?)",
+                             (annotation_id, None if keypoint is None else int(keypoint), text, user_id,
+                              now_iso()))
+            self._event(db, user_id, "add", "review_note", cur.lastrowid, None,
+                        {"annotation_id": annotation_id, "keypoint": keypoint, "text": text})
+            row = db.execute(self._NOTE_SELECT + " WHERE id=?", (cur.lastrowid,)).fetchone()
+        return ReviewNote(*row)
+
+    def review_notes(self, annotation_ids: Iterable[int] | None = None, *,
+                     open_only: bool = False) -> list[ReviewNote]:
+        q, args = self._NOTE_SELECT, []
+        conds = []
+        if annotation_ids is not None:
+            ids = [int(i) for i in annotation_ids]
+            if not ids:
+                return []
+            conds.append(f"annotation_id IN ({','.join('?' * len(ids))})"); args.extend(ids)
+        if open_only:
+            conds.append("addressed_at IS NULL")
+        if conds:
+            q += " WHERE " + " AND ".join(conds)
+        return [ReviewNote(*r) for r in self._db.execute(q + " ORDER BY id", args)]
+
+    def address_review_notes(self, annotation_id: int, *, user_id: int | None) -> int:
+        """Mark an annotation's open notes as addressed (its annotator resubmitted). Returns how many."""
+        with self.tx() as db:
+            ids = [r[0] for r in db.execute("SELECT id FROM review_notes WHERE annotation_id=?"
+                                            " AND addressed_at IS NULL", (annotation_id,))]
+            if ids:
+                db.execute("UPDATE review_notes SET addressed_at=?, addressed_by=? WHERE annotation_id=?"
+                           " AND addressed_at IS NULL", (now_iso(), user_id, annotation_id))
+                self._event(db, user_id, "addressed", "annotation", annotation_id, None, {"notes": ids})
+        return len(ids)
+
+    def set_agreement_frames(self, frame_ids: list[int], *, seed: int, share: float,
+                             user_id: int | None):
+        """Replace the set of frames chosen for double labelling (kept in the order given)."""
+        with self.tx() as db:
+            before = [r[0] for r in db.execute("SELECT frame_id FROM agreement_frames ORDER BY rank")]
+            db.execute("DELETE FROM agreement_frames")
+            at = now_iso()
+            db.executemany("INSERT INTO agreement_frames(frame_id, rank, chosen_at) VALUES (?, ?, ?)",
+                           ((int(f), n, at) for n, f in enumerate(frame_ids)))
+            db.execute("INSERT OR REPLACE INTO meta(key, value) VALUES ('agreement_seed', ?)", (str(seed),))
+            db.execute("INSERT OR REPLACE INTO meta(key, value) VALUES ('agreement_share', ?)", (repr(share),))
+            self._event(db, user_id, "choose", "agreement_frames", None, {"frames": len(before)},
+                        {"frames": len(frame_ids), "seed": seed, "share": share})
+
+    def agreement_frame_ids(self) -> list[int]:
+        return [r[0] for r in self._db.execute("SELECT frame_id FROM agreement_frames ORDER BY rank")]
+
+    _SECOND_SELECT = ("SELECT id, frame_id, person, keypoints, labelled_by, version, created_at, updated_at"
+                      " FROM second_labels")
+
+    @staticmethod
+    def _second(row) -> SecondLabel:
+        return SecondLabel(id=row[0], frame_id=row[1], person=row[2], keypoints=_kp_load(row[3]),
+                           labelled_by=row[4], version=row[5], created_at=row[6], updated_at=row[7])
+
+    def save_second_label(self, frame_id: int, keypoints: np.ndarray, *, user_id: int, person: int = 0,
+                          expected_version: int | None = None) -> SecondLabel:
+        """Create or replace one user's agreement label on a frame.
+
+        The event row records who and which version, not the points: the event log
+        is readable in the app, and the first annotator must not see the second label.
+        """
+        _, skel = self.skeleton()
+        kps = np.asarray(keypoints, dtype=float)
+        if kps.shape != (skel.num_keypoints, 3):
+            raise KinemarkError(f"expected {skel.num_keypoints} keypoints (x, y, v), got shape {kps.shape}")
+        if not np.all(np.isin(kps[:, 2], (0, 1, 2))):
+            raise KinemarkError("visibility must be 0, 1 or 2 (COCO)")
+        if not np.all(np.isfinite(kps[:, :2])):
+            raise KinemarkError("keypoint coordinates must be finite numbers")
+        kps = kps.copy()
+        kps[kps[:, 2] == 0, :2] = 0.0
+        with self.tx() as db:
+            row = db.execute(self._SECOND_SELECT + " WHERE frame_id=? AND person=? AND labelled_by=?",
+                             (frame_id, person, user_id)).fetchone()
+            have = row[5] if row else 0
+            if expected_version is not None and have != expected_version:
+                raise KinemarkError(f"your agreement label on this frame is at version {have}, you had "
+                                    f"{expected_version}; reload it before saving")
+            at = now_iso()
+            if row is None:
+                cur = db.execute("INSERT INTO second_labels(frame_id, person, keypoints, labelled_by, version,"
+                                 " created_at, updated_at) VALUES (?, ?, ?, ?, 1, ?, ?)",
+                                 (frame_id, person, _kp_json(kps), user_id, at, at))
+                sid = cur.lastrowid
+            else:
+                sid = row[0]
+                db.execute("UPDATE second_labels SET keypoints=?, version=version+1, updated_at=? WHERE id=?",
+                           (_kp_json(kps), at, sid))
+            out = self._second(db.execute(self._SECOND_SELECT + " WHERE id=?", (sid,)).fetchone())
+            self._event(db, user_id, "edit", "second_label", sid, {"version": have},
+                        {"version": out.version, "frame_id": frame_id, "person": person})
+        return out
+
+    def second_labels(self, *, frame_id: int | None = None, user_id: int | None = None) -> list[SecondLabel]:
+        q, args, conds = self._SECOND_SELECT, [], []
+        if frame_id is not None:
+            conds.append("frame_id=?"); args.append(frame_id)
+        if user_id is not None:
+            conds.append("labelled_by=?"); args.append(user_id)
+        if conds:
+            q += " WHERE " + " AND ".join(conds)
+        return [self._second(r) for r in self._db.execute(q + " ORDER BY frame_id, person, id", args)]
 
 
 def _split_sql(script: str) -> list[str]:
