@@ -1,0 +1,1 @@
+"""Kinemark's desktop front end (PySide6). Renders what kinemark.core returns."""

@@ -305,7 +305,7 @@ def reopen(project, annotation_id, notes: Iterable[NoteSpec] = (), *, user=None,
 
 
 def edit(project, frame_id: int, keypoints, sources, *, user=None, person: int = 0, bbox=None,
-         expected_version: int | None = None) -> Changes:
+         expected_version: int | None = None, action: str = "edit") -> Changes:
     """Save a person's keypoints on a frame, under the review rules, as one transaction.
 
     blank / prefilled / drafting / returned: saved as drafting (prefilled is started and
@@ -322,7 +322,9 @@ def edit(project, frame_id: int, keypoints, sources, *, user=None, person: int =
                 by = store.user(a.updated_by).name if a and a.updated_by else "someone"
                 raise KinemarkError(f"this frame was changed by {by} (version {have}, you had "
                                     f"{expected_version}); reload it before saving")
-        state, action = DRAFTING, "edit"
+        state = DRAFTING
+        if action in _NOT_EDITS:
+            raise ValueError(f"{action!r} is not an editing action")
         if a is not None:
             if a.state == ACCEPTED:
                 raise KinemarkError(f"annotation {a.id} is accepted and frozen; a reviewer can reopen it")

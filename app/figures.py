@@ -1,0 +1,154 @@
+"""Numbers behind the Overview pictures. Plain numpy over what the store returns; no Qt.
+
+(These could move to core/ if another front end wants them.)
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..core.metrics import bbox_from_keypoints, keypoint_similarity
+from ..core.model import ACCEPTED, DRAFTING, IN_REVIEW, PREFILLED, RETURNED
+
+LABELLED = (DRAFTING, IN_REVIEW, ACCEPTED, RETURNED)
+
+
+def normalise(kps: np.ndarray, names) -> np.ndarray:
+    """(N, K, 3) poses -> (N, K, 2): centred on the mid-hip, divided by the torso length
+    (mid-hip to mid-shoulder). NaN where a point is missing (v = 0). Poses without a
+    torso fall back to their mean point and the spread of their points."""
+    kps = np.asarray(kps, float)
+    xy = kps[..., :2].copy()
+    xy[kps[..., 2] <= 0] = np.nan
+    names = list(names)
+
+    def mid(a, b):
+        if a in names and b in names:
+            with np.errstate(invalid="ignore"):
+                return np.nanmean(xy[:, [names.index(a), names.index(b)]], axis=1)
+        return np.full((len(xy), 2), np.nan)
+
+    import warnings
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        hip, sh = mid("left_hip", "right_hip"), mid("left_shoulder", "right_shoulder")
+        torso = np.hypot(*(sh - hip).T)
+        centre = np.where(np.isfinite(hip), hip, np.nanmean(xy, axis=1))
+        spread = np.sqrt(np.nanvar(xy[..., 0], axis=1) + np.nanvar(xy[..., 1], axis=1))
+        scale = np.where(np.isfinite(torso) & (torso > 1e-6), torso, spread)
+        scale = np.where(np.isfinite(scale) & (scale > 1e-6), scale, np.nan)
+        return (xy - centre[:, None, :]) / scale[:, None, None]
+
+
+def pca_2d(features: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Project rows onto their first two principal components (Pearson 1901; via the SVD).
+
+    Missing values are filled with their column's mean first (mean imputation, common practice).
+    Returns (N, 2) coordinates and the share of variance of each of the two components.
+    """
+    X = np.asarray(features, float)
+    if X.shape[0] == 0:
+        return np.zeros((0, 2)), np.zeros(2)
+    with np.errstate(invalid="ignore"):
+        col = np.nanmean(np.where(np.isfinite(X), X, np.nan), axis=0)
+    col = np.nan_to_num(col)
+    X = np.where(np.isfinite(X), X, col)
+    X = X - X.mean(axis=0)
+    if X.shape[0] < 2:
+        return np.zeros((X.shape[0], 2)), np.zeros(2)
+    U, S, Vt = np.linalg.svd(X, full_matrices=False)
+    k = min(2, Vt.shape[0])
+    out = np.zeros((X.shape[0], 2))
+    out[:, :k] = X @ Vt[:k].T
+    var = S ** 2
+    share = np.zeros(2)
+    share[:k] = var[:k] / var.sum() if var.sum() > 0 else 0
+    return out, share
+
+
+@dataclass
+class Coverage:
+    xy: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))
+    group: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype="<U8"))   # labelled|pool|queued
+    frame_ids: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
+    share: np.ndarray = field(default_factory=lambda: np.zeros(2))
+    without_pose: int = 0
+
+
+def coverage(project, queued_ids=()) -> Coverage:
+    """Labelled poses (a person's annotations), the pool (proposals on frames nobody labelled
+    yet) and the queued part of the pool, in one 2-D projection of normalised poses."""
+    store, names = project.store, project.skeleton.keypoints
+    labelled = {a.frame_id: a.keypoints for a in store.annotations(LABELLED)}
+    props = {}
+    for p in store.proposals():
+        if p.frame_id not in labelled and (p.frame_id not in props or not p.adapted):
+            props[p.frame_id] = p.keypoints
+    for a in store.annotations([PREFILLED]):
+        if a.frame_id not in labelled and a.frame_id not in props:
+            props[a.frame_id] = a.keypoints
+    queued = set(int(q) for q in queued_ids)
+    fids = list(labelled) + list(props)
+    if not fids:
+        return Coverage(without_pose=store.frame_count())
+    kps = np.stack([labelled[f] if f in labelled else props[f] for f in fids])
+    norm = normalise(kps, names)
+    ok = np.isfinite(norm).any(axis=(1, 2))
+    feats = norm.reshape(len(norm), -1)[ok]
+    xy, share = pca_2d(feats)
+    fids = np.array(fids)[ok]
+    group = np.array(["labelled" if f in labelled else ("queued" if f in queued else "pool") for f in fids])
+    return Coverage(xy, group, fids, share, store.frame_count() - len(fids))
+
+
+@dataclass
+class KeypointFigures:
+    names: tuple
+    compared: np.ndarray          # (K,) accepted labels with a proposal for this point
+    needs_move: np.ndarray        # (K,) share of those where the proposal needed a move
+    median_px: np.ndarray         # (K,) median distance proposal -> accepted label, pixels
+    by_state: dict                # state -> (K,) labelled points (v > 0) per keypoint
+    frames_by_state: dict         # state -> frames
+
+
+def keypoint_figures(project) -> KeypointFigures:
+    """Per keypoint: how far the model's proposal was from the accepted label, and how many
+    labelled points each state holds. "Needed a move" is Kinemark's working definition
+    (core.metrics.joints_needing_move): per-keypoint OKS similarity below 0.5, computed
+    as pycocotools does, with the accepted label's box area as the object area."""
+    store, skel = project.store, project.skeleton
+    K = skel.num_keypoints
+    props = {}
+    for p in store.proposals():
+        if p.frame_id not in props or not p.adapted:
+            props[p.frame_id] = p
+    dists = [[] for _ in range(K)]
+    moves = np.zeros(K)
+    compared = np.zeros(K)
+    by_state = {s: np.zeros(K, int) for s in (PREFILLED,) + LABELLED}
+    for a in store.annotations():
+        by_state.setdefault(a.state, np.zeros(K, int))
+        by_state[a.state] += (a.keypoints[:, 2] > 0).astype(int)
+        if a.state != ACCEPTED or a.frame_id not in props:
+            continue
+        gt, dt = a.keypoints, props[a.frame_id].keypoints
+        box = a.bbox or bbox_from_keypoints(gt)
+        if box is None:
+            continue
+        area = float(box[2] * box[3])
+        sim = keypoint_similarity(gt, dt, area, skel.sigma_array)
+        for k in range(K):
+            if gt[k, 2] <= 0:
+                continue
+            compared[k] += 1
+            if dt[k, 2] <= 0:
+                moves[k] += 1
+                continue
+            dists[k].append(float(np.hypot(*(dt[k, :2] - gt[k, :2]))))
+            moves[k] += sim[k] < 0.5
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = np.where(compared > 0, moves / compared, np.nan)
+    med = np.array([np.median(d) if d else np.nan for d in dists])
+    frames = store.state_counts()
+    return KeypointFigures(tuple(skel.keypoints), compared, share, med, by_state, frames)
