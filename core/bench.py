@@ -101,6 +101,9 @@ def run(what: str, args=None):
         bench_rank()
     if what in ("propose", "all"):
         bench_propose(n or 60)
+    if what in ("queue", "all"):
+        from .bench_queue import run as run_queue
+        run_queue()
 
 
 def bench_rank(sizes=(10_000, 30_000, 100_000), batch: int = 200, dim: int = 34):

@@ -336,7 +336,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.set_defaults(fn=cmd_open)
 
     s = sub.add_parser("bench", help="measure speed and memory; prints figures")
-    s.add_argument("what", choices=["export", "open", "rank", "propose", "all"])
+    s.add_argument("what", choices=["export", "open", "rank", "propose", "queue", "all"])
     s.add_argument("--frames", type=int, default=None, help="override the benchmark size")
     s.set_defaults(fn=cmd_bench)
     return ap

@@ -57,7 +57,7 @@ def test_rejected_when_it_would_make_things_worse():
         if not corr.use[j]:
             assert j not in corr.models
         else:
-            assert corr.heldout_adapted[j] < corr.heldout_raw[j]
+            assert corr.heldout_adapted[j] > corr.heldout_raw[j]
 
 
 def test_needs_more_than_one_participant():
