@@ -52,7 +52,8 @@ def cmd_new(a):
     from . import ops
     from .skeleton import load_skeleton
     skel = load_skeleton(a.skeleton)
-    with ops.new_project(a.dir, skel, owner=a.user, media_root=a.media_root) as p:
+    with ops.new_project(a.dir, skel, owner=a.user, media_root=a.media_root, db=a.db,
+                         schema=a.db_schema) as p:
         print(f"created project {p.root} with skeleton {skel.name} ({skel.num_keypoints} keypoints); "
               f"owner {p.user().name}")
     print(CAUTION)
@@ -216,9 +217,27 @@ def cmd_demo(a):
 
 
 def cmd_open(a):
-    # the desktop workspace lives in kinemark.app; imported only here, so core never loads Qt
+    # the desktop workspace lives in kinemark.app; imported only here, so core never loads Qt.
+    # A folder with the demo clips but no project (sample_project on a fresh clone) is built
+    # first, with progress here on the terminal (see app.main.run).
     from ..app.main import run
-    return run(a.dir, screenshot=a.screenshot)
+    return run(a.dir, screenshot=a.screenshot, user=a.user)
+
+
+def cmd_claim(a):
+    from . import ops
+    with _open(a.dir) as p:
+        if a.release:
+            n = p.store.release_claims(p.user(a.user).id)
+            print(f"released {n} frame(s)")
+            return
+        ch, new, renewed = ops.claim_batch(p, a.batch, lease_minutes=a.minutes, user=a.user)
+        frames = {f.id: f for f in p.store.frames()}
+        names = {m.id: m.display_name for m in p.store.all_media()}
+    print(ch.message)
+    for fid in renewed + new:
+        f = frames[fid]
+        print(f"  frame {fid:<6} {names[f.media_id]} #{f.frame_index}")
 
 
 def cmd_bench(a):
@@ -237,6 +256,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("dir")
     s.add_argument("--skeleton", default="coco17", help="coco17 (built in) or a skeleton JSON file")
     s.add_argument("--media-root", help="a shared folder that media paths are stored relative to")
+    s.add_argument("--db", help="team mode: a PostgreSQL connection string without a password "
+                                "(postgresql://user@host/db); the password comes from PGPASSWORD or ~/.pgpass")
+    s.add_argument("--db-schema", help="team mode: the schema that holds this project (default: from the folder name)")
     s.set_defaults(fn=cmd_new)
 
     s = sub.add_parser("add", help="add videos, image folders or images")
@@ -319,6 +341,13 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("adapt", help="refit the per-project correction of proposals from accepted labels")
     s.add_argument("dir")
     s.set_defaults(fn=cmd_adapt)
+
+    s = sub.add_parser("claim", help="team mode: take a batch of frames from the queue as a lease")
+    s.add_argument("dir")
+    s.add_argument("--batch", type=int, default=20)
+    s.add_argument("--minutes", type=float, default=60.0, help="how long the lease lasts")
+    s.add_argument("--release", action="store_true", help="give back every frame you hold")
+    s.set_defaults(fn=cmd_claim)
 
     s = sub.add_parser("demo", help="the main job, headless, on the invented Quillon Bay clinic scenario")
     s.add_argument("--out", default="sample_project", help="project folder (default: sample_project)")

@@ -34,8 +34,9 @@ def _tick(progress, done, total, message):
 # ---- project ------------------------------------------------------------------------
 
 def new_project(root, skeleton: Skeleton, *, owner: str | None = None,
-                media_root: str | None = None) -> Project:
-    return Project.create(root, skeleton, owner=owner, media_root=media_root)
+                media_root: str | None = None, db: str | None = None,
+                schema: str | None = None) -> Project:
+    return Project.create(root, skeleton, owner=owner, media_root=media_root, db=db, schema=schema)
 
 
 # ---- media --------------------------------------------------------------------------
@@ -351,3 +352,33 @@ def adapt(project: Project, *, with_embedding: bool = True):
     """Refit the per-project correction (see :mod:`.adapt`). Returns (Changes, Correction)."""
     from .adapt import fit_project
     return fit_project(project, with_embedding=with_embedding)
+
+
+# ---- team mode ----------------------------------------------------------------------------
+
+def claim_batch(project: Project, n: int = 20, *, lease_minutes: float = 60.0, user: str | None = None):
+    """Take the next ``n`` frames of the ranked queue as a lease, so nobody else gets them.
+
+    Frames leased to someone else are skipped; your own live leases are renewed and count
+    towards ``n``. Returns (Changes, new frame ids, renewed frame ids).
+    """
+    from .ranking import rank_queue
+    if n < 1:
+        raise KinemarkError("a batch needs at least one frame")
+    who = project.user(user)
+    want = n
+    new, renewed = [], []
+    tried = set()
+    for _ in range(4):     # others may win some frames meanwhile: ask the queue for more
+        others = {f for f, (u, _) in project.store.claims().items() if u != who.id}
+        queue = rank_queue(project, want + len(others) + len(tried))
+        cand = [e.frame_id for e in queue if e.frame_id not in others and e.frame_id not in tried]
+        got, mine = project.store.claim_frames(who.id, cand, n, lease_minutes * 60.0)
+        new += got
+        renewed = mine
+        tried |= set(cand)
+        if len(new) + len(renewed) >= n or not cand:
+            break
+    msg = (f"{who.name} holds {len(new) + len(renewed)} frame(s) for {lease_minutes:g} min "
+           f"({len(new)} new, {len(renewed)} renewed)")
+    return Changes(frames=tuple(new), message=msg), new, renewed

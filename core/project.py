@@ -5,7 +5,9 @@ No global state: every operation takes the Project it works on.
 from __future__ import annotations
 
 import getpass
+import json
 import os
+import re
 from pathlib import Path
 
 import numpy as np
@@ -15,6 +17,22 @@ from .media import FrameCache, FrameSource, file_sha256
 from .model import Media, User
 from .skeleton import Skeleton
 from .store import DB_NAME, Store
+
+
+TEAM_FILE = "team.json"
+
+
+def _schema_from_folder(root: Path) -> str:
+    name = re.sub(r"[^a-z0-9_]+", "_", Path(root).resolve().name.lower()).strip("_") or "project"
+    if not name[0].isalpha():
+        name = "p_" + name
+    return name[:63]
+
+
+def _write_private(path: Path, text: str):
+    fd = os.open(str(path), os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+    with os.fdopen(fd, "w", encoding="utf-8") as f:
+        f.write(text)
 
 
 def _default_user_name() -> str:
@@ -36,14 +54,26 @@ class Project:
 
     @classmethod
     def create(cls, root: str | Path, skeleton: Skeleton, *, owner: str | None = None,
-               media_root: str | None = None) -> "Project":
+               media_root: str | None = None, db: str | None = None,
+               schema: str | None = None) -> "Project":
+        """A new project folder. With ``db`` (a PostgreSQL connection string, no password in
+        it) the project lives in a schema of that team database; the folder then holds only
+        ``team.json`` saying where (the password comes from PGPASSWORD or ~/.pgpass)."""
         root = Path(root)
-        if (root / DB_NAME).exists():
+        if (root / DB_NAME).exists() or (root / TEAM_FILE).exists():
             raise KinemarkError(f"{root} already holds a Kinemark project")
         if root.exists() and not root.is_dir():
             raise KinemarkError(f"{root} exists and is not a folder")
-        root.mkdir(parents=True, exist_ok=True)
-        store = Store(root / DB_NAME, create=True)
+        if db:
+            from .store import check_dsn_has_no_password
+            check_dsn_has_no_password(db)
+            schema = schema or _schema_from_folder(root)
+            store = Store.postgres(db, schema, create=True)
+            root.mkdir(parents=True, exist_ok=True)
+            _write_private(root / TEAM_FILE, json.dumps({"dsn": db, "schema": schema}, indent=2))
+        else:
+            root.mkdir(parents=True, exist_ok=True)
+            store = Store(root / DB_NAME, create=True)
         try:
             owner_user = store.add_user(owner or _default_user_name(), "admin")
             store.add_skeleton(skeleton, user_id=owner_user.id)
@@ -60,6 +90,14 @@ class Project:
         root = Path(root)
         if not root.is_dir():
             raise KinemarkError(f"{root} is not a folder")
+        team = root / TEAM_FILE
+        if team.exists():
+            try:
+                conf = json.loads(team.read_text())
+                dsn, schema = os.environ.get("KINEMARK_DB") or conf["dsn"], conf["schema"]
+            except (OSError, ValueError, KeyError, TypeError) as e:
+                raise KinemarkError(f"cannot read the team settings: {e}", where=str(team)) from None
+            return cls(root, Store.postgres(dsn, schema))
         db = root / DB_NAME
         if not db.exists():
             raise KinemarkError(f"{root} is not a Kinemark project (no {DB_NAME}); "

@@ -34,6 +34,7 @@ transition's name and the note).
 from __future__ import annotations
 
 import json
+import time
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Iterable
@@ -315,6 +316,11 @@ def edit(project, frame_id: int, keypoints, sources, *, user=None, person: int =
     who = _user(project, user)
     store = project.store
     with store.tx():
+        holder = store.claim_holder(frame_id)
+        if holder is not None and holder[0] != who.id:
+            other = store.user(holder[0]).name
+            raise KinemarkError(f"frame {frame_id} is claimed by {other} until "
+                                f"{time.strftime('%H:%M', time.localtime(holder[1]))}; take another frame")
         a = store.annotation(frame_id, person)
         if expected_version is not None:
             have = a.version if a else 0

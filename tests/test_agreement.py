@@ -168,13 +168,13 @@ def test_a_version_1_database_is_migrated_forward(tmp_path):
     from kinemark.core import store as store_mod
     db = tmp_path / store_mod.DB_NAME
     con = sqlite3.connect(db)
-    for stmt in store_mod._split_sql(store_mod.MIGRATIONS[0]):
+    for stmt in store_mod._split_sql(store_mod.MIGRATIONS[0]["sqlite"]):
         con.execute(stmt)
     con.execute("INSERT INTO meta(key, value) VALUES ('schema_version', '1')")
     con.commit()
     con.close()
     s = store_mod.Store(db)
-    assert s.version() == 2
+    assert s.version() == store_mod.schema_version()
     tables = {r[0] for r in s._db.execute("SELECT name FROM sqlite_master WHERE type='table'")}
     assert {"review_notes", "agreement_frames", "second_labels"} <= tables
     assert s.agreement_frame_ids() == [] and s.second_labels() == []
