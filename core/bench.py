@@ -104,6 +104,12 @@ def run(what: str, args=None):
     if what in ("queue", "all"):
         from .bench_queue import run as run_queue
         run_queue()
+    if what in ("team", "all"):
+        from .bench_team import run as run_team
+        run_team(getattr(args, "db", None), seconds=getattr(args, "seconds", None) or 60.0)
+    if what in ("gui", "all"):
+        from ..app.bench_gui import run as run_gui   # the app's own benchmark (imports Qt)
+        run_gui(args)
 
 
 def bench_rank(sizes=(10_000, 30_000, 100_000), batch: int = 200, dim: int = 34):

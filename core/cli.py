@@ -365,8 +365,10 @@ def build_parser() -> argparse.ArgumentParser:
     s.set_defaults(fn=cmd_open)
 
     s = sub.add_parser("bench", help="measure speed and memory; prints figures")
-    s.add_argument("what", choices=["export", "open", "rank", "propose", "queue", "all"])
+    s.add_argument("what", choices=["export", "open", "rank", "propose", "queue", "team", "gui", "all"])
     s.add_argument("--frames", type=int, default=None, help="override the benchmark size")
+    s.add_argument("--seconds", type=float, default=None, help="team: how long the load runs (default 60)")
+    s.add_argument("--db", help="team: PostgreSQL connection string (default $KINEMARK_TEST_PG)")
     s.set_defaults(fn=cmd_bench)
     return ap
 
