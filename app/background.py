@@ -87,12 +87,18 @@ class Background(QObject):
     def run(self, title: str, fn: Callable[[Any, Callable, threading.Event], Any], *,
             root: Path | None, on_done: Callable[[Any], None] | None = None,
             on_error: Callable[[BaseException], None] | None = None, quiet: bool = False,
-            cancellable: bool = True) -> threading.Event:
+            cancellable: bool = True, on_progress: Callable[[int, int, str], None] | None = None,
+            on_cancelled: Callable[[], None] | None = None) -> threading.Event:
         """Start ``fn``; returns its cancel event.
 
         ``root``: the project folder to open in the worker (None: no project).
         ``quiet``: no progress dialog and no message box on error (``on_error``
         still runs); for background refreshes the person did not ask for.
+        ``on_progress(done, total, message)``: also told of progress, on the GUI
+        thread (e.g. a progress line in the status bar for a quiet job that the
+        person can follow and cancel while they go on working).
+        ``on_cancelled()``: runs on the GUI thread when the job ended by Cancel
+        (work that stores as it goes may have kept its finished part).
         """
         job_id = self._next_id
         self._next_id += 1
@@ -111,7 +117,9 @@ class Background(QObject):
             dialog.canceled.connect(cancel.set)
             dialog.setValue(0)
 
-        def on_progress(done, total, message):
+        def on_progress_(done, total, message):
+            if on_progress is not None:
+                on_progress(done, total, message)
             if dialog is not None:
                 dialog.setMaximum(max(total, 1))
                 dialog.setValue(min(done, max(total, 1)))
@@ -135,6 +143,8 @@ class Background(QObject):
             finish()
             if isinstance(exc, Cancelled):
                 self.status(f"{title}: cancelled; nothing was changed by the unfinished part")
+                if on_cancelled is not None:
+                    on_cancelled()
                 return
             self.last_error = exc
             if on_error is not None:
@@ -142,7 +152,7 @@ class Background(QObject):
             if not quiet:
                 self.show_error(exc, tb, title)
 
-        signals.progress.connect(on_progress, Qt.QueuedConnection)
+        signals.progress.connect(on_progress_, Qt.QueuedConnection)
         signals.done.connect(on_success, Qt.QueuedConnection)
         signals.failed.connect(on_failure, Qt.QueuedConnection)
         self._active[job_id] = (title, cancel, signals, dialog)

@@ -7,7 +7,12 @@ their size on screen while zooming; positions are kept as floats.
 
 Mouse: drag a handle to move it; drag elsewhere (or with the middle button)
 to pan; the wheel zooms about the pointer; double-click places the current
-keypoint there.
+keypoint there. A read-only view (``set_editable(False)``, the Sign-off page
+when the person may not correct the frame) still picks keypoints, pans and
+zooms, but moves nothing.
+
+A keypoint with a reviewer's open note carries a small badge beside its handle,
+and the note as its tooltip.
 """
 from __future__ import annotations
 
@@ -29,7 +34,8 @@ MACHINE = ("model", "adapted", "propagated")
 
 class Handle(QGraphicsItem):
     """One keypoint. Circle: a person's point; diamond: a machine's (model, tracker) not yet confirmed.
-    Filled: visible; ring: occluded. Not drawn when not in frame."""
+    Filled: visible; ring: occluded. Not drawn when not in frame. A small square badge at the
+    upper left: a reviewer left a note on this keypoint (the note is the tooltip)."""
 
     def __init__(self, index: int, colour: str):
         super().__init__()
@@ -38,6 +44,7 @@ class Handle(QGraphicsItem):
         self.v = 0
         self.machine = False
         self.current = False
+        self.note = ""
         self.setFlag(QGraphicsItem.ItemIgnoresTransformations, True)
         self.setZValue(10)
         self.setAcceptHoverEvents(False)
@@ -72,6 +79,10 @@ class Handle(QGraphicsItem):
             painter.drawPath(path)
             painter.setPen(QPen(self.colour, 2.5))
             painter.drawPath(path)
+        if self.note:
+            painter.setPen(QPen(QColor(theme.BLACK), 1.2))
+            painter.setBrush(QBrush(QColor(theme.VERMILLION)))
+            painter.drawRect(QRectF(-RADIUS - 5.5, -RADIUS - 5.5, 7.0, 7.0))
 
 
 class Label(QGraphicsItem):
@@ -144,6 +155,25 @@ class FrameCanvas(QGraphicsView):
         self._cursor: QPointF | None = None
         self._fitted = True
         self._message = None
+        self.editable = True
+
+    def set_editable(self, on: bool):
+        """False: handles can be picked but not dragged, and double-click places nothing."""
+        self.editable = bool(on)
+        if not on:
+            self._drag = None
+
+    def set_notes(self, notes: dict[int, str]):
+        """Mark the keypoints that carry a reviewer's note (index -> the note's text)."""
+        for i, h in enumerate(self._handles):
+            text = notes.get(i, "")
+            if text != h.note:
+                h.note = text
+                h.setToolTip(text)
+                h.update()
+
+    def note_of(self, index: int) -> str:
+        return self._handles[index].note
 
     # ---- content ----------------------------------------------------------------------
 
@@ -363,6 +393,10 @@ class FrameCanvas(QGraphicsView):
         self._cursor = pos
         if e.button() == Qt.LeftButton:
             idx = self._nearest(pos)
+            if idx is not None and not self.editable:
+                if idx != self.current:
+                    self.keypointPicked.emit(idx)
+                idx = None                     # read-only: pick it, then pan as on empty picture
             if idx is not None:
                 offset = self._handles[idx].pos() - self.to_scene(pos)
                 self._drag = (idx, offset, False)
@@ -417,7 +451,7 @@ class FrameCanvas(QGraphicsView):
         super().mouseReleaseEvent(e)
 
     def mouseDoubleClickEvent(self, e):
-        if e.button() == Qt.LeftButton and self._nearest(e.position()) is None:
+        if self.editable and e.button() == Qt.LeftButton and self._nearest(e.position()) is None:
             s = self.to_scene(e.position())
             w, h = self._size
             if -0.5 <= s.x() <= w - 0.5 and -0.5 <= s.y() <= h - 0.5:

@@ -2,9 +2,13 @@
 
 Label page: Up next (left), the frame with its keypoints and the clip strip
 (centre), the Keypoints panel (right). Overview page: the pose map and the
-keypoint charts. Every edit goes through core.edit and is stored the moment it
-is made; the last frame shown is remembered per project, so after a crash the
-project reopens where it was with nothing lost.
+keypoint charts. Sign-off page: the frames handed in, riskiest first (left),
+the same frame view (centre, moved there while the page is shown), and the
+reviewer's decisions (right). Every edit goes through core.edit and every
+decision through core.review, which enforce the roles and that nobody signs off
+their own work; each is stored the moment it is made. The last frame shown and
+who is working are remembered per project, so after a crash the project reopens
+where it was with nothing lost.
 """
 from __future__ import annotations
 
@@ -14,28 +18,36 @@ import sys
 import time
 from pathlib import Path
 
-from PySide6.QtCore import QSettings, Qt, QTimer
+from PySide6.QtCore import QSettings, Qt, QTimer, Signal
 from PySide6.QtGui import QAction, QUndoStack
-from PySide6.QtWidgets import (QApplication, QFileDialog, QHBoxLayout, QLabel, QMainWindow, QPushButton,
-                               QSizePolicy, QSplitter, QStackedWidget, QTabWidget, QVBoxLayout, QWidget)
+from PySide6.QtWidgets import (QApplication, QFileDialog, QHBoxLayout, QLabel, QMainWindow, QMessageBox,
+                               QProgressBar, QPushButton, QSizePolicy, QSplitter, QStackedWidget, QTabWidget,
+                               QVBoxLayout, QWidget)
 
-from ..core import edit
+from ..core import edit, review
 from ..core.errors import KinemarkError
 from ..core.media import media_kind
-from ..core.model import ACCEPTED, BLANK, IN_REVIEW
+from ..core.model import ACCEPTED, BLANK, DRAFTING, IN_REVIEW, RETURNED, Changes
 from . import theme
 from .background import Background
 from .canvas import FrameCanvas
 from .commands import SnapshotCommand
 from .dialogs import CAUTION, CAUTION_SHORT, NewProjectDialog, SamplingDialog, about
+from .forms import ExportDialog, NotesDialog, WhoDialog
 from .frames import FrameWorker, prepare
 from .panels.overview import OverviewPage
 from .panels.points import KeypointPanel
 from .panels.queue import DEFAULT_TARGET, QueuePanel, load_queue
+from .panels.signoff import SignoffList, SignoffPanel, flag_text
 from .panels.strip import ClipStrip
 from .shortcuts import COMMANDS, KeySheet, Keys
 
 CARRY_COUNT = 10
+LABEL_PAGE, OVERVIEW_PAGE, SIGNOFF_PAGE = 0, 1, 2
+#: Edit commands that change keypoints: on the Sign-off page they are corrections, allowed only
+#: where the person may sign the frame off.
+EDIT_COMMANDS = ("point.put", "point.visibility", "point.confirm", "point.confirm_all", "assist.carry",
+                 "assist.fill", "assist.model", "frame.hand_in")
 
 
 def _key(root: Path) -> str:
@@ -85,6 +97,63 @@ class Welcome(QWidget):
         lay.addStretch(3)
 
 
+class TaskLine(QWidget):
+    """A long job the person can follow and cancel from the status bar while they go on working."""
+
+    finished = Signal()
+
+    def __init__(self):
+        super().__init__()
+        lay = QHBoxLayout(self)
+        lay.setContentsMargins(0, 0, 0, 0)
+        lay.setSpacing(6)
+        self.text = QLabel("")
+        self.bar = QProgressBar()
+        self.bar.setFixedWidth(140)
+        self.bar.setFixedHeight(8)
+        self.bar.setTextVisible(False)
+        self.bar.setStyleSheet(f"QProgressBar {{ background: {theme.LINE}; }}")   # seen on the status bar
+        self.cancel = QPushButton("Cancel")
+        self.cancel.setFocusPolicy(Qt.NoFocus)
+        self.cancel.setStyleSheet("QPushButton { padding: 1px 8px; }")
+        lay.addWidget(self.text)
+        lay.addWidget(self.bar)
+        lay.addWidget(self.cancel)
+        self._event = None
+        self.cancel.clicked.connect(self._cancel)
+        self.setVisible(False)
+
+    def start(self, title: str, event, short: str | None = None):
+        self._title = short or title
+        self.setToolTip(title)
+        self._event = event
+        self.text.setText(f"{self._title}…")
+        self.bar.setMaximum(0)
+        self.cancel.setEnabled(True)
+        self.setVisible(True)
+
+    def progress(self, done: int, total: int, message: str = ""):
+        self.bar.setMaximum(max(total, 1))
+        self.bar.setValue(min(done, max(total, 1)))
+        self.text.setText(f"{self._title}: {done} of {total}")
+        self.setToolTip(message)
+
+    def _cancel(self):
+        if self._event is not None:
+            self._event.set()
+            self.text.setText(f"{self._title}: stopping…")
+            self.cancel.setEnabled(False)
+
+    def finish(self):
+        self._event = None
+        self.setVisible(False)
+        self.finished.emit()
+
+    @property
+    def running(self) -> bool:
+        return self._event is not None
+
+
 class MainWindow(QMainWindow):
     def __init__(self, settings: QSettings | None = None):
         super().__init__()
@@ -92,6 +161,8 @@ class MainWindow(QMainWindow):
         self.settings = settings or QSettings("Kinemark", "Kinemark")
         self.keys = Keys(self.settings)
         self.project = None
+        self.user_name: str | None = None
+        self.user_role: str | None = None
         self.undo = QUndoStack(self)
         self.background = Background(self)
         self.frames = FrameWorker()
@@ -108,6 +179,10 @@ class MainWindow(QMainWindow):
         self.model_name: str | None = None
         self._adapter = None
         self._overview_dirty = True
+        self._signoff_dirty = True
+        self._signoff_current: int | None = None      # annotation id shown on the Sign-off page
+        self._hand_in_flags: dict[int, list] = {}     # frame id -> QA flags at its last hand-in
+        self._auto_prefill = False
         self._strip_media = None
         self.key_sheet = None
         self.last_latency_ms = 0.0
@@ -135,13 +210,13 @@ class MainWindow(QMainWindow):
 
         label_page = QWidget()
         label_page.setObjectName("page")
-        split = QSplitter(Qt.Horizontal)
+        split = self.label_split = QSplitter(Qt.Horizontal)
         split.setHandleWidth(1)
         self.queue = QueuePanel()
         self.queue.setMinimumWidth(280)
         self.queue.chosen.connect(self.go)
         self.queue.rerank.connect(self.refresh_queue)
-        centre = QWidget()
+        centre = self.centre = QWidget()
         cl = QVBoxLayout(centre)
         cl.setContentsMargins(0, 0, 0, 0)
         cl.setSpacing(0)
@@ -166,7 +241,9 @@ class MainWindow(QMainWindow):
         self.points.setMinimumWidth(330)
         self.points.picked.connect(self.set_point_index)
         split.addWidget(self.queue)
-        split.addWidget(centre)
+        self.label_holder = self._holder()
+        self.label_holder.layout().addWidget(centre)
+        split.addWidget(self.label_holder)
         split.addWidget(self.points)
         split.setStretchFactor(0, 0)
         split.setStretchFactor(1, 1)
@@ -178,17 +255,63 @@ class MainWindow(QMainWindow):
         self.tabs.addTab(label_page, "Label")
         self.overview = OverviewPage()
         self.tabs.addTab(self.overview, "Overview")
+
+        signoff_page = QWidget()
+        signoff_page.setObjectName("page")
+        self.signoff_split = QSplitter(Qt.Horizontal)
+        self.signoff_split.setHandleWidth(1)
+        self.signoff_list = SignoffList()
+        self.signoff_list.setMinimumWidth(280)
+        self.signoff_list.chosen.connect(self.show_for_signoff)
+        self.signoff_list.refresh.connect(self.refresh_signoff)
+        self.signoff_list.accept_clean.connect(self.signoff_accept_clean)
+        self.signoff = SignoffPanel()
+        self.signoff.setMinimumWidth(330)
+        self.signoff.accept.connect(self.signoff_accept)
+        self.signoff.send_back.connect(self.signoff_send_back)
+        self.signoff_holder = self._holder()      # the frame view moves in while the page is shown
+        self.signoff_split.addWidget(self.signoff_list)
+        self.signoff_split.addWidget(self.signoff_holder)
+        self.signoff_split.addWidget(self.signoff)
+        self.signoff_split.setStretchFactor(0, 0)
+        self.signoff_split.setStretchFactor(1, 1)
+        self.signoff_split.setStretchFactor(2, 0)
+        self.signoff_split.setSizes([300, 800, 340])
+        sl = QVBoxLayout(signoff_page)
+        sl.setContentsMargins(0, 0, 0, 0)
+        sl.addWidget(self.signoff_split)
+        self.tabs.addTab(signoff_page, "Sign-off")
         self.tabs.currentChanged.connect(self._on_tab)
 
         sb = self.statusBar()
         sb.setSizeGripEnabled(False)
+        self.task = TaskLine()
+        self.task.finished.connect(lambda: self.caution_label.setText(CAUTION_SHORT))
         self.user_label = QLabel("")
+        self.user_label.setToolTip("who is working: Project ▸ Who is working… to change")
         self.model_label = QLabel("")
         self.caution_label = QLabel(CAUTION_SHORT)
         self.caution_label.setToolTip(CAUTION)
+        sb.addPermanentWidget(self.task)
         sb.addPermanentWidget(self.user_label)
         sb.addPermanentWidget(self.model_label)
         sb.addPermanentWidget(self.caution_label)
+
+    @staticmethod
+    def _holder() -> QWidget:
+        w = QWidget()
+        w.setObjectName("page")
+        lay = QVBoxLayout(w)
+        lay.setContentsMargins(0, 0, 0, 0)
+        lay.setSpacing(0)
+        return w
+
+    def _place_frame_view(self, page: int):
+        """The one frame view (with its frame line and clip strip) goes to the page shown."""
+        holder = self.signoff_holder if page == SIGNOFF_PAGE else self.label_holder
+        if self.centre.parent() is not holder:
+            holder.layout().addWidget(self.centre)     # reparenting takes it out of the other page
+            self.centre.show()
 
     def _build_actions(self):
         handlers = {
@@ -196,6 +319,7 @@ class MainWindow(QMainWindow):
             "frame.prev": lambda: self.step_frame(-1),
             "queue.next": self.next_in_line,
             "frame.hand_in": self.hand_in,
+            "frame.take_back": self.take_back,
             "point.next": lambda: self.step_point(+1),
             "point.prev": lambda: self.step_point(-1),
             "point.put": self.put_here,
@@ -210,14 +334,24 @@ class MainWindow(QMainWindow):
             "view.fit": self.canvas.fit,
             "view.zoom_in": lambda: self.canvas.zoom(1.25, self._zoom_anchor()),
             "view.zoom_out": lambda: self.canvas.zoom(0.8, self._zoom_anchor()),
-            "view.label": lambda: self.tabs.setCurrentIndex(0),
-            "view.overview": lambda: self.tabs.setCurrentIndex(1),
+            "view.label": lambda: self.tabs.setCurrentIndex(LABEL_PAGE),
+            "view.overview": lambda: self.tabs.setCurrentIndex(OVERVIEW_PAGE),
+            "view.signoff": lambda: self.tabs.setCurrentIndex(SIGNOFF_PAGE),
+            "signoff.accept": self.signoff_accept,
+            "signoff.send_back": self.signoff_send_back,
+            "signoff.accept_clean": self.signoff_accept_clean,
+            "batch.prefill": lambda: self.prefill_unlabelled(),
+            "batch.learn": self.learn_from_accepted,
+            "batch.export": self.ask_export,
             "help.keys": self.show_keys,
         }
         self.actions: dict[str, QAction] = {}
         for c in COMMANDS:
             a = QAction(c.name, self)
-            a.triggered.connect(handlers[c.id])
+            fn = handlers[c.id]
+            if c.id in EDIT_COMMANDS:
+                fn = self._guarded(fn)
+            a.triggered.connect(fn)
             self.addAction(a)
             self.keys.bind(c.id, a)
             self.actions[c.id] = a
@@ -228,14 +362,26 @@ class MainWindow(QMainWindow):
             a = m.addAction(text)
             a.triggered.connect(fn)
             a.setShortcut(key)
+        self.who_action = m.addAction("Who is working…")
+        self.who_action.triggered.connect(self.ask_who)
+        self.who_action.setEnabled(False)
+        m.addSeparator()
+        for c in COMMANDS:
+            if c.group == "Project":
+                m.addAction(self.actions[c.id])
         m.addSeparator()
         m.addAction("Quit").triggered.connect(self.close)
         for title, group in (("&Frame", "Frames"), ("&Keypoint", "Keypoints"), ("&Edit", "Edit"),
-                             ("&Assist", "Assist"), ("&View", "View"), ("&Help", "Help")):
+                             ("&Assist", "Assist"), ("&Sign-off", "Sign-off"), ("&View", "View"),
+                             ("&Help", "Help")):
             m = mb.addMenu(title)
+            prev = None
             for c in COMMANDS:
                 if c.group == group:
+                    if prev is not None and prev.split(".")[0] != c.id.split(".")[0]:
+                        m.addSeparator()          # e.g. whole-project model runs after this frame's
                     m.addAction(self.actions[c.id])
+                    prev = c.id
             if group == "Help":
                 m.addAction("About Kinemark").triggered.connect(lambda: about(self))
         self._enable(False)
@@ -244,6 +390,18 @@ class MainWindow(QMainWindow):
         for cid, a in self.actions.items():
             if not cid.startswith("help."):
                 a.setEnabled(on)
+        if hasattr(self, "who_action"):
+            self.who_action.setEnabled(on)
+
+    def _guarded(self, fn):
+        """On the Sign-off page the frame is read-only unless this person may correct it."""
+        def run():
+            if self.tabs.currentIndex() == SIGNOFF_PAGE and not self.canvas.editable:
+                self.statusBar().showMessage(self.signoff.may.text() or
+                                             "read-only here: choose a frame that you may sign off", 5000)
+                return
+            fn()
+        return run
 
     # ---- project ---------------------------------------------------------------------------
 
@@ -268,19 +426,33 @@ class MainWindow(QMainWindow):
         p.close()
         return self.open_project(root)
 
-    def open_project(self, root) -> bool:
+    def open_project(self, root, *, user: str | None = None, ask_user: bool = True,
+                     auto_prefill: bool = True) -> bool:
+        """Open a project folder. ``user``: who is working (else $KINEMARK_USER, else the choice
+        remembered for this project, else asked when the project has several people, else the
+        project's default user). ``auto_prefill``: pre-fill in the background when the project
+        has frames but no model proposal at all."""
+        from ..core.demo import sample_needs_building
         from ..core.project import Project
+        if sample_needs_building(root):
+            self.build_sample(root, user=user, auto_prefill=auto_prefill)
+            return False
         try:
             project = Project.open(root)
-            user = project.user()
         except KinemarkError as e:
+            self.background.show_error(e)
+            return False
+        try:
+            who = self.choose_user(project, user, ask=ask_user)
+        except KinemarkError as e:
+            project.close()
             self.background.show_error(e)
             return False
         self.close_project()
         self.project = project
         self.undo.clear()
         self.setWindowTitle(f"Kinemark — {project.root.name}")
-        self.user_label.setText(f"{user.name} ({user.role})")
+        self._set_user(who)
         skel = project.skeleton
         self.canvas.set_skeleton(skel.keypoints, skel.edges)
         self.points.set_skeleton(skel.keypoints)
@@ -302,7 +474,79 @@ class MainWindow(QMainWindow):
             self.canvas.set_image(None, "No frames yet: drop videos or image folders here to add them.")
             self._update_frameline()
         self.refresh_queue()
+        self._signoff_dirty = True
+        if self.tabs.currentIndex() == SIGNOFF_PAGE:
+            self.refresh_signoff()
+        self._auto_prefill = auto_prefill
         self.check_model()
+        return True
+
+    def build_sample(self, root, *, user=None, auto_prefill=True):
+        """A folder with the demo clips (clips/scenario.json) but no project yet: build it in the
+        background from the clips, then open it."""
+        from ..core.demo import build_sample_project
+        root = Path(root)
+
+        def work(project, progress, cancel):
+            return build_sample_project(root, progress=progress)
+
+        self.background.run(f"Building the sample project in {root.name} from its clips", work, root=None,
+                            on_done=lambda _: self.open_project(root, user=user, auto_prefill=auto_prefill))
+
+    # ---- who is working --------------------------------------------------------------------
+
+    def _user_key(self, root) -> str:
+        return f"user/{_key(root)}"
+
+    def choose_user(self, project, wanted: str | None = None, *, ask: bool = True):
+        """Who is working on ``project`` (see :meth:`open_project`). Raises KinemarkError for a
+        name the project does not have."""
+        if wanted:
+            return project.user(wanted)
+        if os.environ.get("KINEMARK_USER"):
+            return project.user()
+        users = project.store.users()
+        by_name = {u.name: u for u in users}
+        remembered = self.settings.value(self._user_key(project.root))
+        if remembered in by_name:
+            return by_name[remembered]
+        default = project.user()
+        if len(users) > 1 and ask:
+            dlg = WhoDialog(users, default.name, project.root.name, self)
+            if dlg.exec() and dlg.chosen() in by_name:
+                self.settings.setValue(self._user_key(project.root), dlg.chosen())
+                self.settings.sync()
+                return by_name[dlg.chosen()]
+        return default
+
+    def _set_user(self, who):
+        self.user_name, self.user_role = who.name, who.role
+        self.user_label.setText(f"working as {who.name} ({who.role})")
+
+    def ask_who(self):
+        """Change who is working (the undo history is cleared: it was the other person's)."""
+        if self.project is None:
+            return
+        users = self.project.store.users()
+        dlg = WhoDialog(users, self.user_name, self.project.root.name, self)
+        if not dlg.exec() or not dlg.chosen():
+            return
+        self.switch_user(dlg.chosen())
+
+    def switch_user(self, name: str) -> bool:
+        try:
+            who = self.project.user(name)
+        except KinemarkError as e:
+            self.background.show_error(e)
+            return False
+        if who.name != self.user_name:
+            self.undo.clear()
+        self.settings.setValue(self._user_key(self.project.root), who.name)
+        self.settings.sync()
+        self._set_user(who)
+        if self.tabs.currentIndex() == SIGNOFF_PAGE:
+            self.show_for_signoff(self._signoff_current)
+        self.statusBar().showMessage(f"now working as {who.name} ({who.role})", 5000)
         return True
 
     def close_project(self):
@@ -319,7 +563,13 @@ class MainWindow(QMainWindow):
         self.working = None
         self.undo.clear()
         self.queue.clear()
+        self.signoff_list.clear()
+        self.signoff.show_item(None)
+        self._signoff_current = None
+        self._hand_in_flags = {}
+        self.task.finish()
         self._strip_media = None
+        self.user_name = self.user_role = None
 
     def reload_media(self):
         s = self.project.store
@@ -425,6 +675,13 @@ class MainWindow(QMainWindow):
             self.statusBar().showMessage("that was the last frame" if d > 0 else "this is the first frame", 3000)
 
     def next_in_line(self):
+        if self.tabs.currentIndex() == SIGNOFF_PAGE:
+            it = self.signoff_list.after(self._signoff_current)
+            if it is None:
+                self.statusBar().showMessage("nothing else is waiting for sign-off", 4000)
+                return
+            self.show_for_signoff(it.annotation_id)
+            return
         fid = self.queue.next_after(self.frame_id)
         if fid is None:
             self.statusBar().showMessage("nothing else is waiting in Up next", 4000)
@@ -453,7 +710,39 @@ class MainWindow(QMainWindow):
         self.canvas.set_points(w.keypoints, w.sources, self.point)
         self.points.set_points(w.keypoints, w.sources, w.confidence, self.point)
         self.states[self.frame_id] = w.state
+        self._show_notes(w)
+        self._show_checks()
         self._update_frameline()
+        if self.tabs.currentIndex() == SIGNOFF_PAGE:
+            self._update_signoff_panel()
+
+    def _show_notes(self, w):
+        """A reviewer's open notes, on their keypoints' handles and in the Keypoints panel. Notes are
+        open only between sending back and the next hand-in, so other states are not looked up."""
+        notes = []
+        if w.annotation_id is not None and w.state in (RETURNED, DRAFTING):
+            notes = [n for n in review.notes_for_frame(self.project, self.frame_id) if n.person == 0]
+        self.current_notes = notes
+        self.points.set_notes([(n.note.keypoint, n.note.text, n.author_name) for n in notes])
+        pinned: dict[int, list[str]] = {}
+        for n in notes:
+            if n.note.keypoint is not None:
+                pinned.setdefault(n.note.keypoint, []).append(
+                    f"{n.note.text} ({n.author_name})" if n.author_name else n.note.text)
+        self.canvas.set_notes({i: "Reviewer's note: " + " · ".join(t) for i, t in pinned.items()})
+
+    def _show_checks(self):
+        flags = self._hand_in_flags.get(self.frame_id)
+        if flags is None or self.states.get(self.frame_id) == ACCEPTED:
+            self.points.set_checks(None)
+            return
+        if not flags:
+            self.points.set_checks([("ok", "nothing to look at")])
+            return
+        self.points.set_checks([(f.severity, self._flag_text(f)) for f in flags])
+
+    def _flag_text(self, f) -> str:
+        return flag_text(f, self.project.skeleton.keypoints)
 
     def _update_frameline(self):
         if self.project is None or self.frame_id is None or self.working is None:
@@ -541,7 +830,7 @@ class MainWindow(QMainWindow):
         if self.project is None:
             return False
         try:
-            ch = edit.restore(self.project, target, expect=expect, action=action)
+            ch = edit.restore(self.project, target, expect=expect, action=action, user=self.user_name)
         except KinemarkError as e:
             self.background.show_error(KinemarkError(f"cannot {action}: {e}"))
             return False
@@ -557,7 +846,7 @@ class MainWindow(QMainWindow):
     def _on_dragged(self, index: int, x: float, y: float):
         fid = self.frame_id
         self._apply(f"Move {self._name(index)}",
-                    lambda: edit.set_point(self.project, fid, index, x, y))
+                    lambda: edit.set_point(self.project, fid, index, x, y, user=self.user_name))
 
     def put_here(self):
         pos = self.canvas.cursor_position()
@@ -568,7 +857,7 @@ class MainWindow(QMainWindow):
 
     def put_at(self, x: float, y: float):
         fid, i = self.frame_id, self.point
-        if self._apply(f"Put {self._name(i)}", lambda: edit.set_point(self.project, fid, i, x, y)) is not None:
+        if self._apply(f"Put {self._name(i)}", lambda: edit.set_point(self.project, fid, i, x, y, user=self.user_name)) is not None:
             self.step_point(+1)
 
     def cycle_visibility(self):
@@ -587,18 +876,51 @@ class MainWindow(QMainWindow):
                 self.statusBar().showMessage(f"{self._name(i)} has no position yet: point at the frame, or use Put here", 4000)
                 return
         self._apply(f"{self._name(i)}: {edit.VISIBILITY_WORDS[nv]}",
-                    lambda: edit.set_visibility(self.project, fid, i, nv, at=at))
+                    lambda: edit.set_visibility(self.project, fid, i, nv, at=at, user=self.user_name))
 
     def confirm(self, current_only: bool):
         fid, i = self.frame_id, self.point
         idx = [i] if current_only else None
         self._apply("Confirm " + (self._name(i) if current_only else "all points"),
-                    lambda: edit.confirm(self.project, fid, idx))
+                    lambda: edit.confirm(self.project, fid, idx, user=self.user_name))
 
     def hand_in(self):
         fid = self.frame_id
-        if self._apply("Hand in", lambda: edit.hand_in(self.project, fid)) is not None:
-            self.queue.mark(self.states)
+        ch = self._apply("Hand in", lambda: edit.hand_in(self.project, fid, user=self.user_name))
+        if ch is None:
+            return
+        self.queue.mark(self.states)
+        self._signoff_dirty = True
+        flags = list((ch.details or {}).get("flags") or ())
+        self._hand_in_flags[fid] = flags
+        if fid == self.frame_id:
+            self._show_checks()
+        if flags:
+            n_err = sum(f.severity == "error" for f in flags)
+            self.statusBar().showMessage(
+                f"handed in for review · the QA checks found {n_err} error(s) and {len(flags) - n_err} "
+                f"warning(s): see Checks in the Keypoints panel ({self.keys.text('frame.take_back')} takes "
+                "the frame back to fix them)", 10000)
+        else:
+            self.statusBar().showMessage("handed in for review · the QA checks found nothing to look at", 5000)
+
+    def take_back(self):
+        """Recall a frame one handed in (core refuses once it is signed off, or for someone else's)."""
+        if self.project is None or self.frame_id is None:
+            return
+        fid = self.frame_id
+        a = self.project.store.annotation(fid)
+        if a is None or a.state != IN_REVIEW:
+            self.statusBar().showMessage("this frame is not in review: there is nothing to take back", 4000)
+            return
+        try:
+            ch = review.recall(self.project, a.id, user=self.user_name)
+        except KinemarkError as e:
+            self.background.show_error(e)
+            return
+        self._signoff_dirty = True
+        self.after_change(Changes(frames=(fid,), annotations=ch.annotations,
+                                  message="taken back from review: drafting again"))
 
     def fill_from_keyframe(self):
         if self.project is None or self.frame_id is None:
@@ -608,16 +930,17 @@ class MainWindow(QMainWindow):
         if prev is None:
             self.statusBar().showMessage("no earlier frame of this video holds a person's points", 4000)
             return
-        self._apply("Fill from keyframe", lambda: edit.fill_between(self.project, prev, fid))
+        self._apply("Fill from keyframe", lambda: edit.fill_between(self.project, prev, fid, user=self.user_name))
 
     def carry_forward(self):
         if self.project is None or self.frame_id is None:
             return
         fid = self.frame_id
         count = int(self.settings.value("carry_count", CARRY_COUNT))
+        user = self.user_name
 
         def work(project, progress, cancel):
-            return edit.carry_forward(project, fid, count=count, progress=progress)
+            return edit.carry_forward(project, fid, count=count, progress=progress, user=user)
 
         self.background.run("Carrying points forward", work, root=self.project.root,
                             on_done=lambda ch: self.push_changes("Carry forward", ch))
@@ -637,6 +960,9 @@ class MainWindow(QMainWindow):
             self.model_problem = None
             self.model_name = getattr(adapter, "model_id", "model")
             self.model_label.setText(f"model: {self.model_name}")
+            if self._auto_prefill:
+                self._auto_prefill = False
+                self._prefill_if_never_proposed()
 
         def bad(exc):
             self._adapter = None
@@ -671,6 +997,154 @@ class MainWindow(QMainWindow):
 
         self.background.run("Asking the model", work, root=self.project.root, on_done=done)
 
+    # ---- batch actions -------------------------------------------------------------------------
+
+    def _prefill_if_never_proposed(self):
+        """A project with frames but no model proposal at all (a new one, or the sample on first
+        open) is pre-filled in the background; the person can label meanwhile, or cancel."""
+        if not self.order:
+            return
+
+        def work(project, progress, cancel):
+            # any proposal at all? (stops at the first frame that has one; the store has no count)
+            return project.store.proposal_count() == 0
+
+        def done(never):
+            if never:
+                self.prefill_unlabelled(auto=True)
+
+        self.background.run("Looking for proposals", work, root=self.project.root, on_done=done, quiet=True)
+
+    def prefill_unlabelled(self, auto: bool = False):
+        """Pre-fill every frame nobody has labelled with the pose model, in the background: progress
+        and Cancel in the status bar, labelling goes on meanwhile. Proposals are stored as they come,
+        so a cancelled run keeps what it finished (and a later run skips it)."""
+        if self.project is None:
+            return
+        from ..core import ops
+        if self.task.running:
+            self.statusBar().showMessage("a pre-fill is already running (see the status bar)", 4000)
+            return
+        if self.model_problem is not None:
+            self.statusBar().showMessage(f"The pose model is not available ({self.model_problem}); "
+                                         "nothing to pre-fill with.", 8000)
+            return
+        adapter = self._adapter          # None while it is still loading: the job loads its own
+        title = "Pre-filling unlabelled frames"
+
+        def work(project, progress, cancel):
+            def quiet_when_cancelled(done, total, message=""):
+                if not cancel.is_set():      # let the pre-fill wind down by itself and report
+                    progress(done, total, message)
+            return ops.propose(project, frames="unlabelled", progress=quiet_when_cancelled, cancel=cancel,
+                               adapter=adapter)
+
+        def finished():
+            self.task.finish()
+            self.reload_states()
+            self.refresh_queue()
+
+        def done(result):
+            ch, rep = result
+            finished()
+            self.after_change(ch)
+            self.statusBar().showMessage(rep.summary(), 10000)
+
+        def bad(exc):
+            self.task.finish()
+            if not auto:
+                self.background.show_error(exc)
+            else:
+                self.statusBar().showMessage(f"{title} stopped: {exc}", 10000)
+
+        def cancelled():
+            finished()
+            self.statusBar().showMessage(f"{title}: cancelled; the frames finished so far keep their "
+                                         "proposals, and the next run goes on from there", 10000)
+
+        ev = self.background.run(title, work, root=self.project.root, on_done=done, on_error=bad,
+                                 quiet=True, on_progress=self.task.progress, on_cancelled=cancelled)
+        self.task.start(title, ev, short="Pre-filling")
+        self.caution_label.setText(CAUTION_SHORT.split(" · ")[0])   # room for the task; tooltip has it all
+
+    def reload_states(self):
+        """Read every frame's state again (after work done elsewhere, e.g. a cancelled batch)."""
+        if self.project is None:
+            return
+        self.states = {fid: BLANK for fid in self.order}
+        self.states.update(self.project.store.annotation_states())
+        self.strip.set_states({fid: self.states[fid] for fid in self.by_media.get(
+            self.frame_by_id[self.frame_id].media_id, [])} if self.frame_id is not None else {})
+        self.queue.mark(self.states)
+        self._update_progress()
+        self._overview_dirty = True
+        if self.frame_id is not None:
+            self.load_points()
+
+    def learn_from_accepted(self):
+        """Refit the project's correction of the model (core.adapt) and say what it found."""
+        if self.project is None:
+            return
+        from ..core import ops
+
+        user = self.user_name
+
+        def work(project, progress, cancel):
+            progress(0, 0, "fitting on the accepted and handed-in labels")
+            return ops.adapt(project, user=user)
+
+        def done(result):
+            ch, corr = result
+            self.after_change(ch)
+            self.inform("Learn from accepted labels", ch.message)
+            self.refresh_queue()
+
+        self.background.run("Learning from accepted labels", work, root=self.project.root, on_done=done)
+
+    def inform(self, title: str, text: str):
+        """A result the person asked for, in a box that does not stop the window."""
+        box = QMessageBox(QMessageBox.Information, title, text, QMessageBox.Ok, self)
+        box.setAttribute(Qt.WA_DeleteOnClose)
+        box.finished.connect(lambda *_: self.background.boxes.remove(box) if box in self.background.boxes else None)
+        self.background.boxes.append(box)
+        box.open()
+        return box
+
+    def ask_export(self):
+        if self.project is None:
+            return
+        from ..core.export import DEID_CAUTION
+        default = str(self.project.root / "exports" / time.strftime("accepted-%Y%m%d-%H%M"))
+        dlg = ExportDialog(default, DEID_CAUTION, self)
+        if not dlg.exec():
+            return
+        self.export_accepted(**dlg.settings())
+
+    def export_accepted(self, folder: str, bundle: bool, ratios=(1.0, 0.0, 0.0), seed: int = 0,
+                        deidentify: bool = False):
+        """Accepted labels only: a bundle split by participant (core.export) or one COCO file."""
+        if self.project is None:
+            return
+        from ..core import ops
+        from ..core.export import export_bundle
+        out, user = Path(folder), self.user_name
+
+        def work(project, progress, cancel):
+            target = out / "accepted.coco.json"
+            if not bundle and target.exists():
+                raise KinemarkError("a COCO file is already there; choose a new folder so that nothing is "
+                                    "overwritten", where=str(target))
+            if bundle:
+                return export_bundle(project, out, ratios=ratios, seed=seed, deidentify=deidentify, user=user,
+                                     progress=progress)
+            return ops.export_coco(project, target, progress=progress)
+
+        def done(ch):
+            self.last_export = ch
+            self.inform("Export accepted labels", f"{ch.message}\n\n{CAUTION}")
+
+        self.background.run("Exporting accepted labels", work, root=self.project.root, on_done=done)
+
     # ---- queue and overview ----------------------------------------------------------------------
 
     def refresh_queue(self):
@@ -703,10 +1177,212 @@ class MainWindow(QMainWindow):
     def _on_thumbnail(self, generation, frame_id, image):
         if generation == self.frames.generation:      # not a late one from the previous project
             self.queue.set_thumbnail(frame_id, image)
+            self.signoff_list.set_thumbnail(frame_id, image)
 
     def _on_tab(self, i):
-        if i == 1 and self._overview_dirty and self.project is not None:
+        self._place_frame_view(i)
+        if i == OVERVIEW_PAGE and self._overview_dirty and self.project is not None:
             self.refresh_overview()
+        if i == SIGNOFF_PAGE and self.project is not None:
+            if self._signoff_dirty:
+                self.refresh_signoff()
+            else:
+                self._update_signoff_panel()
+        else:
+            self.canvas.set_editable(True)
+
+    # ---- sign-off ---------------------------------------------------------------------------------
+
+    def refresh_signoff(self):
+        """Read the frames in review, riskiest first (core.review.review_queue), in the background."""
+        if self.project is None:
+            return
+        self.signoff_list.reload.setEnabled(False)
+
+        def work(project, progress, cancel):
+            return review.review_queue(project), {u.id: u.name for u in project.store.users()}
+
+        def done(result):
+            items, users = result
+            self._signoff_dirty = False
+            self._users_by_id = users
+            self.signoff_list.reload.setEnabled(True)
+            self.signoff_list.set_items(items, self._describe_item)
+            self.frames.thumbnails([(it.frame_id, self.frame_by_id[it.frame_id].media_id,
+                                     self.frame_by_id[it.frame_id].frame_index)
+                                    for it in items if it.frame_id in self.frame_by_id])
+            if self.tabs.currentIndex() != SIGNOFF_PAGE:
+                return
+            keep = self.signoff_list.item(self._signoff_current) if self._signoff_current else None
+            if keep is None and self.frame_id is not None:
+                keep = self.signoff_list.item_for_frame(self.frame_id)
+            if keep is None and items:
+                keep = items[0]
+            self.show_for_signoff(keep.annotation_id if keep else None)
+
+        def bad(exc):
+            self.signoff_list.reload.setEnabled(True)
+            self.statusBar().showMessage(f"the frames waiting for sign-off could not be read: {exc}", 10000)
+
+        self.background.run("Reading the frames handed in", work, root=self.project.root, on_done=done,
+                            on_error=bad, quiet=True)
+
+    def _describe_item(self, it) -> str:
+        f = self.frame_by_id.get(it.frame_id)
+        if f is None:
+            return f"frame {it.frame_id}"
+        return self.describe_short(f) + (f" · person {it.person}" if it.person else "")
+
+    def show_for_signoff(self, annotation_id: int | None):
+        """Show a listed frame on the Sign-off page."""
+        self._signoff_current = annotation_id
+        it = self.signoff_list.item(annotation_id) if annotation_id is not None else None
+        self.signoff_list.set_current(annotation_id)
+        if it is not None and it.frame_id != self.frame_id:
+            self.go(it.frame_id)          # load_points updates the panel
+        else:
+            self._update_signoff_panel()
+
+    def _signoff_item(self):
+        """The listed item for the frame on show (None when that frame is not waiting)."""
+        if self.frame_id is None:
+            return None
+        it = self.signoff_list.item(self._signoff_current) if self._signoff_current else None
+        if it is None or it.frame_id != self.frame_id:
+            it = self.signoff_list.item_for_frame(self.frame_id)
+            self._signoff_current = it.annotation_id if it else None
+            self.signoff_list.set_current(self._signoff_current)
+        return it
+
+    def _may_text(self, annotation_id: int) -> tuple[str, bool]:
+        """What the person working may do with this annotation, in core's words; and whether they
+        may correct it (the same people who may accept it)."""
+        allowed = review.allowed_transitions(self.project, annotation_id, self.user_name)
+        if "accept" in allowed:
+            return (f"{self.user_name} may accept this frame, send it back, or correct a point by "
+                    "dragging it (a correction stays in review and is recorded as one)."), True
+        a = self.project.store.annotation_by_id(annotation_id)
+        try:
+            review.check_transition(a, "accept", self.project.user(self.user_name),
+                                    review.authorship(self.project, annotation_id))
+            why = ""
+        except KinemarkError as e:
+            why = str(e)
+        return f"Read-only for {self.user_name}: {why}", False
+
+    def _update_signoff_panel(self):
+        if self.project is None:
+            return
+        it = self._signoff_item()
+        if it is None:
+            state = self.states.get(self.frame_id) if self.frame_id is not None else None
+            self.signoff.show_item(None, state=state)
+            self.canvas.set_editable(False)
+            return
+        may, can = self._may_text(it.annotation_id)
+        notes = [n for n in review.notes_for_frame(self.project, it.frame_id, include_addressed=True)
+                 if n.person == it.person]
+        self.signoff.show_item(it, names=self.project.skeleton.keypoints,
+                               users=getattr(self, "_users_by_id", {}), notes=notes, may=may)
+        self.signoff.keys.setText(" · ".join(f"{self.keys.text(c)} {w}" for c, w in (
+            ("signoff.accept", "accept"), ("signoff.send_back", "send back"), ("queue.next", "next"),
+            ("signoff.accept_clean", "accept all without flags"))))
+        self.canvas.set_editable(can)
+
+    def _on_signoff_page(self, what: str) -> bool:
+        if self.tabs.currentIndex() != SIGNOFF_PAGE:
+            self.statusBar().showMessage(f"{what} works on the Sign-off page "
+                                         f"({self.keys.text('view.signoff')})", 5000)
+            return False
+        return True
+
+    def _signed_off(self, it, ch):
+        """After a decision on ``it``: refresh what it touched, then show the next frame waiting."""
+        nxt = self.signoff_list.after(it.annotation_id)
+        self.signoff_list.remove(it.annotation_id)
+        self._hand_in_flags.pop(it.frame_id, None)
+        self.after_change(Changes(frames=(it.frame_id,), annotations=ch.annotations, message=ch.message))
+        if nxt is not None:
+            self.show_for_signoff(nxt.annotation_id)
+        else:
+            self._signoff_current = None
+            self._update_signoff_panel()
+
+    def signoff_accept(self):
+        if self.project is None or not self._on_signoff_page("Accept"):
+            return
+        it = self._signoff_item()
+        if it is None:
+            self.statusBar().showMessage("this frame is not waiting for sign-off", 4000)
+            return
+        try:
+            ch = review.accept(self.project, it.annotation_id, user=self.user_name)
+        except KinemarkError as e:
+            self.background.show_error(e)
+            return
+        self._signed_off(it, ch)
+
+    def signoff_send_back(self):
+        if self.project is None or not self._on_signoff_page("Send back"):
+            return
+        it = self._signoff_item()
+        if it is None:
+            self.statusBar().showMessage("this frame is not waiting for sign-off", 4000)
+            return
+        try:          # ask core first, so nobody writes notes for a decision they may not make
+            review.check_transition(self.project.store.annotation_by_id(it.annotation_id), "send_back",
+                                    self.project.user(self.user_name),
+                                    review.authorship(self.project, it.annotation_id), note="-")
+        except KinemarkError as e:
+            self.background.show_error(e)
+            return
+        skel = self.project.skeleton
+        kps = self.working.keypoints if self.working is not None else None
+        dlg = NotesDialog(skel.keypoints, skel.edges, kps if kps is not None else [[0, 0, 0]] * len(skel.keypoints),
+                          current=self.point, frame_text=self.describe_frame(self.frame_by_id[it.frame_id]),
+                          parent=self)
+        if not dlg.exec():
+            return
+        notes = dlg.notes()
+        try:
+            ch = review.send_back(self.project, it.annotation_id, notes, user=self.user_name)
+        except KinemarkError as e:
+            self.background.show_error(e)
+            return
+        self._signed_off(it, ch)
+
+    def ask_yes_no(self, text: str) -> bool:
+        """Ask before a batch decision (a modal question; tests replace it)."""
+        return QMessageBox.question(self, "Kinemark", text) == QMessageBox.Yes
+
+    def signoff_accept_clean(self):
+        if self.project is None:
+            return
+        listed = [it for it in self.signoff_list.items if not it.flags]
+        if not self._signoff_dirty and not listed:
+            self.statusBar().showMessage("no frame in review is free of QA flags", 5000)
+            return
+        n = f"the {len(listed)} frame(s)" if not self._signoff_dirty else "every frame"
+        if not self.ask_yes_no(f"Accept {n} in review that have no QA flag? Frames that {self.user_name} "
+                            "labelled or handed in are skipped: someone else signs those off."):
+            return
+        user = self.user_name
+
+        def work(project, progress, cancel):
+            return review.accept_batch(project, user=user, without_flags=True)
+
+        def done(ch):
+            own = sum(1 for _, why in ch.details.get("skipped", ()) if "their own work" in why)
+            msg = ch.message + (f" ({own} of them your own work)" if own else "")
+            touched = tuple(self.project.store.annotation_by_id(a).frame_id for a in ch.annotations)
+            for fid in touched:
+                self._hand_in_flags.pop(fid, None)
+            self.after_change(Changes(frames=touched, annotations=ch.annotations, message=msg))
+            self.statusBar().showMessage(msg, 10000)
+            self.refresh_signoff()
+
+        self.background.run("Accepting the frames without QA flags", work, root=self.project.root,
+                            on_done=done)
 
     def refresh_overview(self):
         from . import figures
@@ -758,11 +1434,12 @@ class MainWindow(QMainWindow):
         """Import media in the background (videos are decoded once to checksum every sampled frame)."""
         from ..core import ops
         first_new = not self.order
+        user = self.user_name
 
         def work(project, progress, cancel):
             return ops.add_media(project, [Path(p) for p in paths], sampling=sampling,
                                  participant=participant, session=session, progress=progress,
-                                 strict=False)
+                                 strict=False, user=user)
 
         def done(result):
             ch, rep = result
@@ -824,19 +1501,33 @@ def settle(app, window: MainWindow, timeout_s: float = 30.0):
     return False
 
 
-def run(root=None, *, screenshot: str | None = None, size=(1440, 900)) -> int:
+def run(root=None, *, screenshot: str | None = None, size=(1440, 900), user: str | None = None) -> int:
     """Start the workspace on a project (or the welcome page). With ``screenshot``, render the
-    main window offscreen, save it as PNG and exit."""
+    main window offscreen, save it as PNG and exit (no question asked, no pre-fill started).
+
+    A folder holding the demo clips but no project yet (``sample_project`` on a fresh clone) is
+    built first, with progress on the terminal; the workspace then pre-fills it in the background.
+    """
     if screenshot:
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     if root is not None:
+        from ..core.demo import build_sample_project, sample_needs_building
         from ..core.project import Project
-        Project.open(root).close()          # a clear one-line error before any window appears
+        if sample_needs_building(root):
+            from ..core.cli import ProgressBar
+            print(f"Building the sample project in {root} from its clips (first open)…", file=sys.stderr)
+            build_sample_project(root, progress=ProgressBar())
+        p = Project.open(root)              # a clear one-line error before any window appears
+        try:
+            if user:
+                p.user(user)
+        finally:
+            p.close()
     app = make_app()
     w = MainWindow()
     w.resize(*size)
     if root is not None:
-        w.open_project(root)
+        w.open_project(root, user=user, ask_user=not screenshot, auto_prefill=not screenshot)
     w.show()
     if screenshot:
         save_screenshot(app, w, screenshot)

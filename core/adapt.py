@@ -319,7 +319,7 @@ def _pairs_from_project(project):
     return pairs
 
 
-def fit_project(project, *, with_embedding: bool = True) -> tuple[Changes, Correction]:
+def fit_project(project, *, with_embedding: bool = True, user: str | None = None) -> tuple[Changes, Correction]:
     """Refit the project's correction from its accepted and submitted labels, store it,
     and re-apply it to frames still holding an untouched model proposal."""
     pairs = _pairs_from_project(project)
@@ -334,8 +334,9 @@ def fit_project(project, *, with_embedding: bool = True) -> tuple[Changes, Corre
     s = samples_from(pairs, K, with_embedding=use_emb)
     corr = fit_correction(s, project.skeleton.sigma_array, model_hash)
     corr.with_embedding = use_emb
-    project.store.set_meta("adaptation", corr.to_json(), user_id=project.user().id)
-    changed = reapply(project, corr) if corr.active else ()
+    who = project.user(user)
+    project.store.set_meta("adaptation", corr.to_json(), user_id=who.id)
+    changed = reapply(project, corr, user_id=who.id) if corr.active else ()
     names = [project.skeleton.keypoints[j] for j in np.flatnonzero(corr.use)]
     if corr.active:
         msg = (f"adapted {len(names)} of {K} joints from {s.R.shape[0]} labelled frames "
@@ -358,7 +359,7 @@ def load_correction(project, model_hash: str) -> Correction | None:
     return corr if corr.model_hash == model_hash and corr.active else None
 
 
-def reapply(project, corr: Correction) -> list[int]:
+def reapply(project, corr: Correction, *, user_id: int | None = None) -> list[int]:
     """Re-pre-fill frames whose annotation is still the untouched model proposal."""
     store = project.store
     changed = []
@@ -370,5 +371,6 @@ def reapply(project, corr: Correction) -> list[int]:
             continue
         kps, src = apply_to(corr, prop.keypoints, prop.confidence, prop.embedding, prop.region,
                             ["model"] * len(prop.keypoints))
-        changed.append(store.save_annotation(a.frame_id, kps, src, state=PREFILLED, action="adapt").id)
+        changed.append(store.save_annotation(a.frame_id, kps, src, state=PREFILLED, action="adapt",
+                                             user_id=user_id).id)
     return changed

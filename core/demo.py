@@ -308,3 +308,36 @@ def run_demo(root: Path, *, clips_dir: Path | None = None, size: str = "demo", s
                        adapted_joints=int(corr.use.sum()), moves_adapted_unlabelled=m_ad_rest,
                        moves_raw_unlabelled=m_raw_rest, heldout={**corr.summary, "unlabelled_frames": len(rest)},
                        export=out, timings=t, failed_frames=len(rep.failed))
+
+
+# ---- the sample project on first open -------------------------------------------------------
+
+SAMPLE_EVERY = 3
+
+
+def sample_needs_building(root) -> bool:
+    """A folder holding the demo clips (``clips/scenario.json``) but no project yet (neither a
+    database nor a team-mode pointer), as the shipped ``sample_project`` is on a fresh clone."""
+    from .project import TEAM_FILE
+    from .store import DB_NAME
+    root = Path(root)
+    return (root.is_dir() and (root / "clips" / "scenario.json").is_file()
+            and not (root / DB_NAME).exists() and not (root / TEAM_FILE).exists())
+
+
+def build_sample_project(root, *, every: int = SAMPLE_EVERY, progress=None) -> bool:
+    """Build the project from ``root/clips`` when :func:`sample_needs_building`; True if it
+    built one. Adds the clips only (no model run, nothing labelled): the person labels."""
+    if not sample_needs_building(root):
+        return False
+    from .store import DB_NAME
+    root = Path(root)
+    try:
+        p, fresh = build_project(root, root / "clips", every=every, progress=progress)
+    except BaseException:
+        # half a project would open as a broken one next time: start again from the clips instead
+        for f in root.glob(DB_NAME + "*"):
+            f.unlink(missing_ok=True)
+        raise
+    p.close()
+    return fresh

@@ -195,11 +195,25 @@ def _check_states(states):
     return states
 
 
-def _write_private(path: Path, text: str):
+def _write_private(path: Path, text: str | bytes, *, follow_links: bool = True):
+    """Write a file readable by the user only: the mode is set on the open file too, since
+    open(2) applies it only when it creates the file. ``follow_links=False``: refuse to
+    write through a symbolic link (O_NOFOLLOW), for names Kinemark chose, not the user."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd = os.open(str(path), os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
-    with os.fdopen(fd, "w", encoding="utf-8") as f:
-        f.write(text)
+    flags = os.O_WRONLY | os.O_CREAT | os.O_TRUNC | (0 if follow_links else getattr(os, "O_NOFOLLOW", 0))
+    try:
+        fd = os.open(str(path), flags, 0o600)
+    except OSError as e:
+        if not follow_links and path.is_symlink():
+            raise KinemarkError("refused to write through a symbolic link", where=str(path)) from None
+        raise KinemarkError(f"cannot write: {e.strerror}", where=str(path)) from None
+    os.fchmod(fd, 0o600)
+    if isinstance(text, bytes):
+        with os.fdopen(fd, "wb") as f:
+            f.write(text)
+    else:
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            f.write(text)
 
 
 def export_coco(project: Project, out: str | Path, *, states=(ACCEPTED,), fmt: str = "coco",
@@ -226,9 +240,10 @@ def export_coco(project: Project, out: str | Path, *, states=(ACCEPTED,), fmt: s
                 done.add(frame_id)
                 img = project.read_frame(media_id, frame_index)
                 target = images_to / coco.frame_file_name(media_id, frame_index)
-                if not cv2.imwrite(str(target), img):
+                ok, png = cv2.imencode(".png", img)
+                if not ok:
                     raise KinemarkError("cannot write image", where=str(target))
-                os.chmod(target, 0o600)
+                _write_private(target, png.tobytes(), follow_links=False)
                 _tick(progress, n + 1, len(rows), "writing frames")
         _write_private(out, json.dumps(data))
         msg = f"wrote {len(data['annotations'])} annotations on {len(data['images'])} images to {out}"
@@ -348,10 +363,10 @@ def rank(project: Project, batch: int = 50):
     return rank_queue(project, batch)
 
 
-def adapt(project: Project, *, with_embedding: bool = True):
+def adapt(project: Project, *, with_embedding: bool = True, user: str | None = None):
     """Refit the per-project correction (see :mod:`.adapt`). Returns (Changes, Correction)."""
     from .adapt import fit_project
-    return fit_project(project, with_embedding=with_embedding)
+    return fit_project(project, with_embedding=with_embedding, user=user)
 
 
 # ---- team mode ----------------------------------------------------------------------------

@@ -717,6 +717,7 @@ class Store:
         kps[kps[:, 2] == 0, :2] = 0.0  # COCO stores unlabelled points as (0, 0, 0)
         skel_id = self.skeleton()[0]
         with self.tx() as db:
+            self.frame(frame_id)            # a clear error for a frame that does not exist
             before = self.annotation(frame_id, person)
             if expected_version is not None:
                 have = before.version if before else 0
@@ -862,6 +863,9 @@ class Store:
             rows = self._db.execute(self._PROP_SELECT + " WHERE model_hash=? ORDER BY frame_id, person",
                                     (model_hash,))
         return [self._prop(r) for r in rows]
+
+    def proposal_count(self) -> int:
+        return self._db.execute("SELECT COUNT(*) FROM proposals").fetchone()[0]
 
     def proposed_frame_ids(self, model_hash: str) -> set[int]:
         return {r[0] for r in self._db.execute("SELECT frame_id FROM proposals WHERE model_hash=?",

@@ -32,8 +32,10 @@ def test_pragmas_and_schema(project):
 
 
 def test_foreign_keys_enforced(project):
-    with pytest.raises(sqlite3.IntegrityError):
+    with pytest.raises(KinemarkError, match="no frame 9999"):
         project.store.save_annotation(9999, _kps(), ["human"] * 17, state=DRAFTING)
+    with pytest.raises(sqlite3.IntegrityError, match="FOREIGN KEY"):   # and the database itself refuses
+        project.store._db.execute("INSERT INTO frames(media_id, frame_index, pixel_sha) VALUES (77, 0, 'x')")
 
 
 def test_edit_and_its_event_are_one_transaction(project, monkeypatch):

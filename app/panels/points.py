@@ -1,5 +1,11 @@
-"""The Keypoints panel: every keypoint of the current frame, its visibility, confidence and source."""
+"""The Keypoints panel: every keypoint of the current frame, its visibility, confidence and source.
+
+Above the table, when there are any: the reviewer's open notes on this frame (each pinned to a
+keypoint or to the whole pose), and the QA checks' findings from the last hand-in of this frame.
+Both are prompts for the annotator, never verdicts."""
 from __future__ import annotations
+
+import html
 
 import numpy as np
 from PySide6.QtCore import QPointF, QRectF, QSize, Qt, Signal
@@ -63,6 +69,18 @@ class KeypointPanel(QWidget):
         self.summary.setObjectName("muted")
         self.summary.setWordWrap(True)
         lay.addWidget(self.summary)
+        self.notes_box = QLabel("")
+        self.notes_box.setObjectName("notes")
+        self.notes_box.setWordWrap(True)
+        self.notes_box.setTextFormat(Qt.RichText)
+        self.notes_box.setVisible(False)
+        lay.addWidget(self.notes_box)
+        self.checks_box = QLabel("")
+        self.checks_box.setObjectName("checks")
+        self.checks_box.setWordWrap(True)
+        self.checks_box.setTextFormat(Qt.RichText)
+        self.checks_box.setVisible(False)
+        lay.addWidget(self.checks_box)
         self.table = QTableWidget(0, 4)
         self.table.setHorizontalHeaderLabels(["Keypoint", "Visibility", "Conf.", "Source"])
         self.table.verticalHeader().setVisible(False)
@@ -80,7 +98,7 @@ class KeypointPanel(QWidget):
         self.table.cellClicked.connect(lambda r, c: self.picked.emit(r))
         lay.addWidget(self.table, 1)
         self.legend = QLabel("●  a person's point\n◆  model or tracker, not yet confirmed\n"
-                             "filled: visible · ring: occluded")
+                             "filled: visible · ring: occluded · ■ a reviewer's note (point at it to read)")
         self.legend.setObjectName("muted")
         self.legend.setWordWrap(True)
         lay.addWidget(self.legend)
@@ -90,11 +108,13 @@ class KeypointPanel(QWidget):
         lay.addWidget(self.hint)
         self._names: tuple[str, ...] = ()
         self._rows: dict = {}
+        self._noted: dict[int, str] = {}
         self._faint, self._text = QColor(theme.FAINT), QColor(theme.TEXT)
 
     def set_skeleton(self, names):
         self._names = tuple(names)
         self._rows = {}
+        self._noted = {}
         self.table.setRowCount(len(names))
         for r, n in enumerate(names):
             for c in range(4):
@@ -120,6 +140,56 @@ class KeypointPanel(QWidget):
             for c in range(4):
                 self.table.item(r, c).setForeground(fg)
         self.set_current(current)
+
+    def _label(self, r: int) -> str:
+        return self._names[r].replace("_", " ")
+
+    def set_notes(self, notes):
+        """The reviewer's open notes: (keypoint index or None, text, author name or None) triples."""
+        notes = list(notes)
+        by_kp: dict[int, list[str]] = {}
+        lines = []
+        for idx, text, author in notes:
+            where = "whole pose" if idx is None else self._label(idx)
+            who = f" <span style='color:{theme.FAINT}'>({html.escape(author)})</span>" if author else ""
+            lines.append(f"<span style='color:{theme.VERMILLION}'>■</span> <b>{html.escape(where)}</b>: "
+                         f"{html.escape(text)}{who}")
+            if idx is not None:
+                by_kp.setdefault(idx, []).append(text)
+        if lines:
+            self.notes_box.setText(f"<span style='color:{theme.TEXT}'>Reviewer's notes</span><br>"
+                                   + "<br>".join(lines))
+        self.notes_box.setVisible(bool(lines))
+        noted = {i: "Reviewer's note: " + " · ".join(t) for i, t in by_kp.items()}
+        for r in set(self._noted) | set(noted):
+            if r >= self.table.rowCount():
+                continue
+            item = self.table.item(r, 0)
+            item.setText(self._label(r) + ("  ■" if r in noted else ""))
+            for c in range(4):
+                self.table.item(r, c).setToolTip(noted.get(r, ""))
+        self._noted = noted
+
+    def notes_text(self) -> str:
+        return self.notes_box.text() if self.notes_box.isVisible() else ""
+
+    def set_checks(self, flags, title: str = "Checks at the last hand-in"):
+        """QA findings: (severity, message) pairs; None or empty hides the box."""
+        flags = list(flags or ())
+        if not flags:
+            self.checks_box.setVisible(False)
+            self.checks_box.setText("")
+            return
+        colour = {"error": theme.VERMILLION, "warning": theme.YELLOW}
+        lines = [f"<span style='color:{colour.get(sev, theme.MUTED)}'>{html.escape(sev)}</span> "
+                 f"{html.escape(msg)}" for sev, msg in flags]
+        self.checks_box.setText(f"<span style='color:{theme.TEXT}'>{html.escape(title)}</span> "
+                                f"<span style='color:{theme.FAINT}'>· prompts to look, not verdicts</span><br>"
+                                + "<br>".join(lines))
+        self.checks_box.setVisible(True)
+
+    def checks_text(self) -> str:
+        return self.checks_box.text() if self.checks_box.isVisible() else ""
 
     def set_current(self, index: int):
         if 0 <= index < self.table.rowCount() and self.table.currentRow() != index:

@@ -73,13 +73,13 @@ def clip_project(project, tmp_path):
     return project
 
 
-def open_window(qtbot, root, settings):
+def open_window(qtbot, root, settings, user=None):
     from kinemark.app.main import MainWindow, make_app
     make_app()
     w = MainWindow(settings=settings)
     qtbot.addWidget(w)
     w.resize(1200, 800)
-    assert w.open_project(root)
+    assert w.open_project(root, user=user)
     w.show()
     qtbot.waitExposed(w)
     qtbot.waitUntil(lambda: not w.background.busy, timeout=20000)
