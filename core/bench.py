@@ -107,6 +107,12 @@ def run(what: str, args=None):
     if what in ("team", "all"):
         from .bench_team import run as run_team
         run_team(getattr(args, "db", None), seconds=getattr(args, "seconds", None) or 60.0)
+    if what in ("crash", "all"):
+        from .reliability import bench_crash
+        bench_crash(getattr(args, "cases", None) or 50)
+    if what in ("fuzz", "all"):
+        from .reliability import bench_fuzz
+        bench_fuzz(getattr(args, "cases", None) or 10_000)
     if what in ("gui", "all"):
         from ..app.bench_gui import run as run_gui   # the app's own benchmark (imports Qt)
         run_gui(args)

@@ -198,7 +198,7 @@ def cmd_rank(a):
 def cmd_adapt(a):
     from . import ops
     with _open(a.dir) as p:
-        ch, corr = ops.adapt(p)
+        ch, corr = ops.adapt(p, user=a.user)
     print(ch.message)
 
 
@@ -365,10 +365,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.set_defaults(fn=cmd_open)
 
     s = sub.add_parser("bench", help="measure speed and memory; prints figures")
-    s.add_argument("what", choices=["export", "open", "rank", "propose", "queue", "team", "gui", "all"])
+    s.add_argument("what", choices=["export", "open", "rank", "propose", "queue", "team", "gui", "crash", "fuzz",
+                                    "all"])
     s.add_argument("--frames", type=int, default=None, help="override the benchmark size")
     s.add_argument("--seconds", type=float, default=None, help="team: how long the load runs (default 60)")
     s.add_argument("--db", help="team: PostgreSQL connection string (default $KINEMARK_TEST_PG)")
+    s.add_argument("--cases", type=int, default=None, help="crash: kills (default 50); fuzz: COCO files (10000)")
     s.set_defaults(fn=cmd_bench)
     return ap
 

@@ -108,7 +108,21 @@ class ImportPlan:
 
 
 def _is_number(x) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+    if isinstance(x, bool) or not isinstance(x, (int, float)):
+        return False
+    try:
+        return math.isfinite(x)
+    except OverflowError:       # a JSON integer too large for a float
+        return False
+
+
+def _hashable(x) -> bool:
+    """Ids from a file may be lists or objects; those can match no id."""
+    try:
+        hash(x)
+    except TypeError:
+        return False
+    return True
 
 
 def _safe_relative(file_name: str) -> str | None:
@@ -145,8 +159,8 @@ def plan_import(data, skeleton: Skeleton, images_root: Path, *, source: str = "C
     person_ids = set()
     for i, c in enumerate(data["categories"]):
         where = f"categories[{i}]"
-        if not isinstance(c, dict) or "id" not in c:
-            P(Problem(where, "a category needs an 'id'")); continue
+        if not isinstance(c, dict) or isinstance(c.get("id"), bool) or not isinstance(c.get("id"), int):
+            P(Problem(where, "a category needs an integer 'id'")); continue
         names = c.get("keypoints")
         if c.get("name") != "person" and not names:
             plan.notices.append(f"{where}: category {c.get('name')!r} has no keypoints; its annotations are ignored")
@@ -217,12 +231,12 @@ def plan_import(data, skeleton: Skeleton, images_root: Path, *, source: str = "C
             P(Problem(where, "duplicate annotation id")); continue
         seen_ann.add(aid)
         cid = a.get("category_id")
-        if cid not in person_ids:
+        if not _hashable(cid) or cid not in person_ids:
             plan.notices.append(f"{where}: category {cid!r} is not a person category with this skeleton; ignored")
             continue
         iid = a.get("image_id")
-        if iid not in image_ids:
-            if iid in seen_ids:
+        if not _hashable(iid) or iid not in image_ids:
+            if _hashable(iid) and iid in seen_ids:
                 P(Problem(f"{where}.image_id", f"its image {iid!r} was refused (see that image's problem)"))
             else:
                 P(Problem(f"{where}.image_id", f"points at unknown image {iid!r}"))
@@ -273,3 +287,8 @@ def load_json(path: Path):
     except json.JSONDecodeError as e:
         raise KinemarkError(f"not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})",
                             where=str(path)) from None
+    except RecursionError:
+        raise KinemarkError("not a usable JSON file: its lists or objects are nested too deeply",
+                            where=str(path)) from None
+    except ValueError as e:     # e.g. an integer literal longer than Python converts (4300 digits)
+        raise KinemarkError(f"not a usable JSON file: {e}", where=str(path)) from None

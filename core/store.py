@@ -322,6 +322,9 @@ class Store:
         self.dialect = "sqlite"
         if not create and not self.path.exists():
             raise KinemarkError(f"no Kinemark project database at {self.path}")
+        if create and not self.path.exists():
+            # made private before SQLite writes a byte (and its -wal/-shm files take this mode)
+            os.close(os.open(str(self.path), os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
         try:
             raw = sqlite3.connect(str(self.path), isolation_level=None, check_same_thread=False,
                                   timeout=30.0)
@@ -330,6 +333,9 @@ class Store:
             self._db.execute("PRAGMA foreign_keys=ON")
             self._db.execute("PRAGMA synchronous=NORMAL")
             self._db.execute("PRAGMA busy_timeout=30000")
+            # without this, INSERT OR REPLACE on events would delete a row without firing the
+            # append-only trigger (SQLite fires delete triggers on REPLACE only recursively)
+            self._db.execute("PRAGMA recursive_triggers=ON")
         except sqlite3.DatabaseError as e:
             raise KinemarkError(f"cannot open project database {self.path}: {e}") from None
         if create:
