@@ -640,8 +640,8 @@ class LandmarkAdapter(PoseAdapter):
             flip_d[cov] = flip_dist[idx] / scale
         signals["flip_disagreement"] = flip_d
         ent = np.full(k, np.nan)
-        ent_all = multipeak_entropy(_sigmoid(np.moveaxis(p["heatmaps"], -1, 0)[:NUM_BODY]))
-        ent[cov] = ent_all[idx]
+        # only the channels the skeleton uses
+        ent[cov] = multipeak_entropy(_sigmoid(np.moveaxis(p["heatmaps"][..., idx], -1, 0)))
         signals["heatmap_entropy"] = ent
         pass_d = np.full(k, np.nan)
         if earlier is not None:
@@ -692,10 +692,11 @@ def _refine(lm: np.ndarray, heatmaps: np.ndarray, *, kernel: int = 7,
     offs = np.arange(-half, half + 1)
     rr = row[pts, None] + offs[None, :]                  # (P, k)
     cc = col[pts, None] + offs[None, :]
-    padded = np.pad(heatmaps[:, :, :NUM_BODY].astype(np.float64), ((half, half), (half, half), (0, 0)),
-                    constant_values=-np.inf)
-    raw = padded[rr[:, :, None] + half, cc[:, None, :] + half, pts[:, None, None]]   # (P, k, k)
-    win = np.where(np.isfinite(raw), _sigmoid(raw), 0.0)
+    # cells outside the heatmap weigh nothing, exactly as a per-point slice would cut them
+    inside = (((rr >= 0) & (rr < hh))[:, :, None]) & (((cc >= 0) & (cc < ww))[:, None, :])
+    raw = heatmaps[np.clip(rr, 0, hh - 1)[:, :, None], np.clip(cc, 0, ww - 1)[:, None, :],
+                   pts[:, None, None]]                   # (P, k, k), no copy of the whole map
+    win = np.where(inside, _sigmoid(raw), 0.0)
     total = win.sum(axis=(1, 2))
     use = (total > 0) & (win.max(axis=(1, 2)) >= min_confidence)
     if use.any():
