@@ -185,7 +185,13 @@ def cmd_propose(a):
 
 def cmd_rank(a):
     from . import ops
+    from .ranking import RankWeights
     with _open(a.dir) as p:
+        if a.set_weights:
+            base = RankWeights.from_json(p.store.get_meta("ranking_weights"))
+            w = RankWeights.parse_user(a.set_weights, base)
+            p.store.set_meta("ranking_weights", w.to_json(), user_id=p.user(a.user).id)
+            print(f"ranking weights for this project: {w.to_json()}")
         entries = ops.rank(p, a.batch)
         names = {m.id: m.display_name for m in p.store.all_media()}
     if not entries:
@@ -336,6 +342,8 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("rank", help="the frames most worth labelling next, with reasons")
     s.add_argument("dir")
     s.add_argument("--batch", type=int, default=50)
+    s.add_argument("--set-weights", metavar="JSON",
+                   help='change this project\'s ranking weights, e.g. \'{"uncertainty": 2, "novelty": 1}\'')
     s.set_defaults(fn=cmd_rank)
 
     s = sub.add_parser("adapt", help="refit the per-project correction of proposals from accepted labels")

@@ -57,6 +57,29 @@ class RankWeights:
         known = {k: v for k, v in data.items() if k in cls.__dataclass_fields__}
         return cls(**known)
 
+    @classmethod
+    def parse_user(cls, text: str, base: "RankWeights | None" = None) -> "RankWeights":
+        """Weights from a person's JSON (e.g. '{"uncertainty": 2}'), checked field by field."""
+        from .errors import KinemarkError
+        try:
+            data = json.loads(text)
+        except json.JSONDecodeError as e:
+            raise KinemarkError(f"ranking weights are not valid JSON: {e.msg}") from None
+        if not isinstance(data, dict):
+            raise KinemarkError("ranking weights must be a JSON object, e.g. {\"uncertainty\": 2}")
+        fields = cls.__dataclass_fields__
+        out = asdict(base or cls())
+        for k, v in data.items():
+            if k not in fields:
+                raise KinemarkError(f"unknown ranking weight {k!r}; known: {', '.join(fields)}")
+            kind = int if fields[k].type in ("int", int) else float
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or (kind is int and v != int(v)):
+                raise KinemarkError(f"ranking weight {k!r} must be a {'whole ' if kind is int else ''}number")
+            if k != "dedup_window" and v < 0:
+                raise KinemarkError(f"ranking weight {k!r} must not be negative")
+            out[k] = kind(v)
+        return cls(**out)
+
     def to_json(self) -> str:
         return json.dumps(asdict(self), sort_keys=True)
 

@@ -143,3 +143,15 @@ def test_uncertainty_by_percentile():
     conf = np.array([[1.0, 0.1], [0.9, 0.8]])
     u = joint_uncertainty(sig, conf)
     assert u[0, 1] == pytest.approx(1.0) and u[0, 0] == pytest.approx(0.0)
+
+
+def test_project_weights_are_checked_field_by_field():
+    from kinemark.core.errors import KinemarkError
+    w = RankWeights.parse_user('{"uncertainty": 2, "dedup_window": 9}')
+    assert w.uncertainty == 2.0 and w.dedup_window == 9 and w.novelty == RankWeights().novelty
+    assert RankWeights.from_json(w.to_json()) == w
+    for bad, msg in [('{"bogus": 1}', "unknown ranking weight"), ('{"novelty": -1}', "negative"),
+                     ('{"dedup_window": 2.5}', "whole number"), ('[1]', "JSON object"), ('{', "not valid JSON"),
+                     ('{"novelty": true}', "number")]:
+        with pytest.raises(KinemarkError, match=msg):
+            RankWeights.parse_user(bad)
