@@ -27,7 +27,7 @@ from PySide6.QtWidgets import (QApplication, QFileDialog, QHBoxLayout, QLabel, Q
 from ..core import edit, review
 from ..core.errors import KinemarkError
 from ..core.media import media_kind
-from ..core.model import ACCEPTED, BLANK, DRAFTING, IN_REVIEW, RETURNED, Changes
+from ..core.model import ACCEPTED, BLANK, DRAFTING, IN_REVIEW, PREFILLED, RETURNED, Changes
 from . import theme
 from .background import Background
 from .canvas import FrameCanvas
@@ -37,7 +37,9 @@ from .forms import ExportDialog, NotesDialog, WhoDialog
 from .frames import FrameWorker, prepare
 from .panels.overview import OverviewPage
 from .panels.points import KeypointPanel
-from .panels.queue import DEFAULT_TARGET, QueuePanel, load_queue
+from .panels.queue import DEFAULT_TARGET, QueuePanel, load_live_queue, load_queue
+
+QUEUE_BATCH = 50
 from .panels.signoff import SignoffList, SignoffPanel, flag_text
 from .panels.strip import ClipStrip
 from .shortcuts import COMMANDS, KeySheet, Keys
@@ -162,6 +164,7 @@ class MainWindow(QMainWindow):
         self.keys = Keys(self.settings)
         self.project = None
         self.user_name: str | None = None
+        self._live = None          # core.ranking.LiveQueue behind Up next, once ranked
         self.user_role: str | None = None
         self.undo = QUndoStack(self)
         self.background = Background(self)
@@ -557,6 +560,7 @@ class MainWindow(QMainWindow):
         self._sync_timer.stop()
         self.settings.sync()
         self.frames.reset()
+        self._live = None
         self.project.close()
         self.project = None
         self.frame_id = None
@@ -813,12 +817,16 @@ class MainWindow(QMainWindow):
         touched = set(ch.frames)
         if not touched and (ch.annotations or ch.proposals):   # e.g. a model pre-fill run
             touched = set(self.order)
+        was = {fid: self.states.get(fid, BLANK) for fid in touched}   # before load_points refreshes them
         if self.frame_id is not None and (self.frame_id in touched or ch.annotations or ch.proposals):
             self.load_points()
         if touched:
             st = self.project.store.annotation_states(touched)
+            newly = [fid for fid in touched if was[fid] in (BLANK, PREFILLED)
+                     and st.get(fid, BLANK) not in (BLANK, PREFILLED)]
             for fid in touched:
                 self.states[fid] = st.get(fid, BLANK)
+            self._fold_into_queue(newly)
             self.strip.set_states({fid: self.states[fid] for fid in touched})
         self.queue.mark(self.states)
         self._update_progress()
@@ -1153,19 +1161,16 @@ class MainWindow(QMainWindow):
         self.queue.button.setEnabled(False)
 
         def work(project, progress, cancel):
-            return load_queue(project, 50)
+            return load_live_queue(project, QUEUE_BATCH)
 
         def done(result):
-            entries, note = result
-            self.queue.button.setEnabled(True)
-            self.queue.set_entries(entries, lambda e: self.describe_short(self.frame_by_id[e.frame_id])
-                                   if e.frame_id in self.frame_by_id else f"frame {e.frame_id}",
-                                   note, self.states)
-            self.queue.set_current(self.frame_id)
-            self.frames.thumbnails([(e.frame_id, e.media_id, e.frame_index) for e in entries
-                                    if e.media_id in self.media_by_id])
-            if self.frame_id is not None:
-                self._prefetch()
+            live, entries, note = result
+            if live is not None and self.project is not None and live.project.root == self.project.root:
+                live.project = self.project       # from now on it reads through this thread's store
+            else:
+                live = None
+            self._live = live
+            self._show_queue(entries, note)
 
         def bad(exc):
             self.queue.button.setEnabled(True)
@@ -1173,6 +1178,28 @@ class MainWindow(QMainWindow):
 
         self.background.run("Ranking frames", work, root=self.project.root, on_done=done, on_error=bad,
                             quiet=True)
+
+    def _fold_into_queue(self, frames):
+        """New labels arrived: update Up next incrementally (core.ranking.LiveQueue)."""
+        if getattr(self, "_live", None) is None or not frames:
+            return
+        try:
+            if self._live.update(frames):
+                self._show_queue(self._live.next(QUEUE_BATCH), "")
+        except Exception as e:   # noqa: BLE001 - a ranking failure must not stop labelling
+            self._live = None
+            self.statusBar().showMessage(f"Up next could not be updated ({e}); use Re-rank", 8000)
+
+    def _show_queue(self, entries, note):
+        self.queue.button.setEnabled(True)
+        self.queue.set_entries(entries, lambda e: self.describe_short(self.frame_by_id[e.frame_id])
+                               if e.frame_id in self.frame_by_id else f"frame {e.frame_id}",
+                               note, self.states)
+        self.queue.set_current(self.frame_id)
+        self.frames.thumbnails([(e.frame_id, e.media_id, e.frame_index) for e in entries
+                                if e.media_id in self.media_by_id])
+        if self.frame_id is not None:
+            self._prefetch()
 
     def _on_thumbnail(self, generation, frame_id, image):
         if generation == self.frames.generation:      # not a late one from the previous project

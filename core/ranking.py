@@ -392,9 +392,20 @@ class LiveQueue:
                             else np.zeros(self.emb_dim, np.float32) for a in annotations])
         return pose_features(kps, self.project.skeleton, emb, self.weights.embedding_weight)
 
-    def update(self) -> int:
-        """Fold in frames labelled since the last build or update. Returns how many."""
-        now = {a.frame_id: a for a in self.project.store.annotations(LABELLED_STATES)}
+    def update(self, frame_ids=None) -> int:
+        """Fold in frames labelled since the last build or update. Returns how many.
+
+        ``frame_ids``: the frames that may have changed (a front end knows them); only
+        those are read. Without it every labelled annotation is read.
+        """
+        if frame_ids is None:
+            now = {a.frame_id: a for a in self.project.store.annotations(LABELLED_STATES)}
+        else:
+            now = {}
+            for fid in frame_ids:
+                a = self.project.store.annotation(fid)
+                if a is not None and a.state in LABELLED_STATES:
+                    now[fid] = a
         new = [a for fid, a in now.items() if fid not in self.labelled]
         self.labelled |= set(now)
         if new and self.queue is not None:

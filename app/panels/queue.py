@@ -54,6 +54,18 @@ def load_queue(project, batch: int = 50) -> tuple[list, str]:
     return out, f"{why}; showing frames not labelled yet, in media order"
 
 
+def load_live_queue(project, batch: int = 50):
+    """Like :func:`load_queue`, but also returns the core LiveQueue (or None on the fallback),
+    so the window can fold new labels in incrementally instead of re-ranking from scratch."""
+    try:
+        from ...core.ranking import LiveQueue
+        live = LiveQueue(project)
+        return live, list(live.next(batch)), ""
+    except Exception:   # noqa: BLE001 - fall back exactly as load_queue does, with its note
+        entries, note = load_queue(project, batch)
+        return None, entries, note
+
+
 TITLE, REASONS, DONE = Qt.UserRole + 1, Qt.UserRole + 2, Qt.UserRole + 3
 
 

@@ -174,6 +174,7 @@ def test_queue_falls_back_to_media_order_when_ranking_fails(window, qtbot, monke
         raise RuntimeError("ranking exploded")
 
     monkeypatch.setattr(ranking, "rank_queue", broken)
+    monkeypatch.setattr(ranking, "LiveQueue", broken)
     window.refresh_queue()
     qtbot.waitUntil(lambda: not window.background.busy, timeout=10000)
     assert "ranking failed" in window.queue.note.text()
@@ -464,3 +465,40 @@ def test_opening_another_project_shows_only_its_frames(window, qtbot, tmp_path):
     shown = window.canvas._full.toImage().convertToFormat(window.canvas._full.toImage().Format.Format_RGB888)
     arr = np.frombuffer(shown.constBits(), np.uint8).reshape(120, shown.bytesPerLine())[:, :480].reshape(120, 160, 3)
     np.testing.assert_array_equal(arr[..., ::-1], want)
+
+
+def test_up_next_folds_new_labels_in_without_reranking(qtbot, tmp_path, monkeypatch, settings):
+    """After a hand-in the queue is updated through LiveQueue.update (incremental), not rebuilt."""
+    import numpy as np
+    from kinemark.core import ranking
+    from kinemark.core.media import Sampling
+    from kinemark.core.ops import add_media
+    from kinemark.core.project import Project
+    from kinemark.core.skeleton import COCO17
+    from conftest import write_video
+    p = Project.create(tmp_path / "q", COCO17, owner="ra1")
+    v = write_video(tmp_path / "v.mp4", n_frames=30)
+    ch, _ = add_media(p, [v], sampling=Sampling(every=3))
+    rng = np.random.default_rng(0)
+    for fid in ch.frames:
+        k = np.column_stack([rng.uniform(10, 150, 17), rng.uniform(10, 110, 17), np.full(17, 2.0)])
+        p.store.save_proposal(fid, model_id="m", model_hash="h", keypoints=k, confidence=np.full(17, 0.9),
+                              signals={"flip_disagreement": rng.uniform(0, 1, 17)}, score=0.9)
+    p.close()
+    rebuilds = []
+    real = ranking.LiveQueue.rebuild
+
+    def counting(self):
+        rebuilds.append(1)
+        return real(self)
+    monkeypatch.setattr(ranking.LiveQueue, "rebuild", counting)
+    from tests.app.conftest import open_window
+    w = open_window(qtbot, tmp_path / "q", settings)
+    qtbot.waitUntil(lambda: w._live is not None, timeout=10000)
+    first = [e.frame_id for e in w._live.next(50)]
+    assert len(rebuilds) == 1
+    target = first[0]
+    w.go(target)
+    w.confirm(current_only=False)
+    assert target not in [e.frame_id for e in w._live.next(50)]     # folded in, not re-ranked
+    assert len(rebuilds) == 1
