@@ -7,13 +7,13 @@ order.
 """
 from __future__ import annotations
 
-import hashlib
 from abc import ABC, abstractmethod
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
+from ..media import file_sha256  # noqa: F401  (re-exported: adapters hash their model file)
 from ..skeleton import Skeleton
 
 
@@ -104,11 +104,3 @@ class PoseAdapter(ABC):
     def describe(self) -> dict:
         return {"model_id": self.model_id, "model_hash": self.model_hash,
                 "keypoints": [n for n, c in zip(self.skeleton.keypoints, self.covered()) if c]}
-
-
-def file_sha256(path: str | Path, chunk: int = 1 << 20) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(chunk), b""):
-            h.update(block)
-    return h.hexdigest()
