@@ -312,6 +312,7 @@ class Store:
     def __init__(self, path: str | Path | None, *, create: bool = False, _pg=None):
         self._lock = threading.RLock()
         self._depth = 0
+        self._skeleton_cache = None
         if _pg is not None:
             self.path = Path(f"postgresql:{_pg[1]}")
             self._db = _PgConnection(_pg[0])
@@ -507,9 +508,17 @@ class Store:
             return new
 
     def skeleton(self, skeleton_id: int | None = None) -> tuple[int, Skeleton]:
-        """The project's skeleton (the first one, unless an id is given)."""
+        """The project's skeleton (the first one, unless an id is given).
+
+        The project's skeleton never changes once written (only added), so it is read once:
+        every save checks against it, and a drag saves often."""
         if skeleton_id is None:
+            if self._skeleton_cache is not None:
+                return self._skeleton_cache
             row = self._db.execute("SELECT id, definition FROM skeletons ORDER BY id LIMIT 1").fetchone()
+            if row is not None:
+                self._skeleton_cache = (row[0], Skeleton.from_dict(json.loads(row[1]), source="project skeleton"))
+                return self._skeleton_cache
         else:
             row = self._db.execute("SELECT id, definition FROM skeletons WHERE id=?",
                                    (skeleton_id,)).fetchone()
@@ -706,7 +715,7 @@ class Store:
         ``expected_version``: the version the caller last saw; if the stored one
         differs, the save is refused (optimistic concurrency), naming who changed it.
         """
-        _, skel = self.skeleton()
+        skel_id, skel = self.skeleton()
         kps = np.asarray(keypoints, dtype=float)
         sources = tuple(sources)
         if kps.shape != (skel.num_keypoints, 3):
@@ -721,7 +730,6 @@ class Store:
             raise KinemarkError("keypoint coordinates must be finite numbers")
         kps = kps.copy()
         kps[kps[:, 2] == 0, :2] = 0.0  # COCO stores unlabelled points as (0, 0, 0)
-        skel_id = self.skeleton()[0]
         with self.tx() as db:
             self.frame(frame_id)            # a clear error for a frame that does not exist
             before = self.annotation(frame_id, person)
@@ -1046,7 +1054,7 @@ class Store:
         The event row records who and which version, not the points: the event log
         is readable in the app, and the first annotator must not see the second label.
         """
-        _, skel = self.skeleton()
+        skel_id, skel = self.skeleton()
         kps = np.asarray(keypoints, dtype=float)
         if kps.shape != (skel.num_keypoints, 3):
             raise KinemarkError(f"expected {skel.num_keypoints} keypoints (x, y, v), got shape {kps.shape}")
