@@ -14,6 +14,42 @@ CAUTION = ("Labels and model output made with Kinemark are research data, not a 
 CAUTION_SHORT = "Research data, not a diagnosis · the study protocol, ethics approval and privacy law come first"
 
 
+def add_ok_cancel(dialog: QDialog, lay, ok_text: str, on_ok=None) -> QDialogButtonBox:
+    """OK and Cancel at the foot of ``lay``: OK reads ``ok_text`` and calls ``on_ok`` (by default the
+    dialog's accept), Cancel rejects the dialog."""
+    bb = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
+    bb.button(QDialogButtonBox.Ok).setText(ok_text)
+    bb.accepted.connect(on_ok if on_ok is not None else dialog.accept)
+    bb.rejected.connect(dialog.reject)
+    lay.addWidget(bb)
+    return bb
+
+
+def muted_note(text: str) -> QLabel:
+    """A wrapped line of secondary text."""
+    note = QLabel(text)
+    note.setObjectName("muted")
+    note.setWordWrap(True)
+    return note
+
+
+def folder_row(dialog: QDialog, edit: QLineEdit, caption: str) -> QHBoxLayout:
+    """``edit`` with a Choose… button beside it that asks for a folder (``caption`` on the
+    chooser) and puts it in ``edit``."""
+    row = QHBoxLayout()
+    pick = QPushButton("Choose…")
+    pick.clicked.connect(lambda *_: _choose_folder(dialog, edit, caption))
+    row.addWidget(edit, 1)
+    row.addWidget(pick)
+    return row
+
+
+def _choose_folder(dialog: QDialog, edit: QLineEdit, caption: str):
+    d = QFileDialog.getExistingDirectory(dialog, caption)
+    if d:
+        edit.setText(d)
+
+
 class SamplingDialog(QDialog):
     """Which frames of the dropped videos to keep, and whose videos they are."""
 
@@ -52,11 +88,7 @@ class SamplingDialog(QDialog):
         form.addRow("Participant", self.participant)
         form.addRow("Session", self.session)
         lay.addLayout(form)
-        bb = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
-        bb.button(QDialogButtonBox.Ok).setText("Add")
-        bb.accepted.connect(self.accept)
-        bb.rejected.connect(self.reject)
-        lay.addWidget(bb)
+        add_ok_cancel(self, lay, "Add")
 
     def sampling(self) -> Sampling:
         b = self.group.checkedId()
@@ -77,14 +109,9 @@ class NewProjectDialog(QDialog):
         self.setWindowTitle("New project")
         lay = QVBoxLayout(self)
         form = QFormLayout()
-        row = QHBoxLayout()
         self.folder = QLineEdit()
         self.folder.setPlaceholderText("an empty folder for the project")
-        pick = QPushButton("Choose…")
-        pick.clicked.connect(self._pick)
-        row.addWidget(self.folder, 1)
-        row.addWidget(pick)
-        form.addRow("Folder", row)
+        form.addRow("Folder", folder_row(self, self.folder, "Project folder"))
         self.skeleton = QComboBox()
         for name in BUILTIN:
             self.skeleton.addItem(f"{name} (built in)", name)
@@ -92,21 +119,9 @@ class NewProjectDialog(QDialog):
         self.skeleton.activated.connect(self._maybe_file)
         form.addRow("Skeleton", self.skeleton)
         lay.addLayout(form)
-        note = QLabel(CAUTION)
-        note.setWordWrap(True)
-        note.setObjectName("muted")
-        lay.addWidget(note)
-        bb = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
-        bb.button(QDialogButtonBox.Ok).setText("Create")
-        bb.accepted.connect(self.accept)
-        bb.rejected.connect(self.reject)
-        lay.addWidget(bb)
+        lay.addWidget(muted_note(CAUTION))
+        add_ok_cancel(self, lay, "Create")
         self.skeleton_file = None
-
-    def _pick(self):
-        d = QFileDialog.getExistingDirectory(self, "Project folder")
-        if d:
-            self.folder.setText(d)
 
     def _maybe_file(self, i):
         if self.skeleton.itemData(i) == "":

@@ -10,13 +10,12 @@ import math
 import numpy as np
 from PySide6.QtCore import QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import QColor, QPainter, QPen
-from PySide6.QtWidgets import (QAbstractItemView, QCheckBox, QComboBox, QDialog, QDialogButtonBox,
-                               QDoubleSpinBox, QFileDialog, QFormLayout, QGridLayout, QHBoxLayout, QLabel,
-                               QLineEdit, QListWidget, QListWidgetItem, QPushButton, QSpinBox, QVBoxLayout,
-                               QWidget)
+from PySide6.QtWidgets import (QAbstractItemView, QCheckBox, QComboBox, QDialog, QDoubleSpinBox, QFormLayout,
+                               QGridLayout, QHBoxLayout, QLabel, QLineEdit, QListWidget, QListWidgetItem,
+                               QPushButton, QSpinBox, QVBoxLayout, QWidget)
 
 from . import theme
-from .dialogs import CAUTION
+from .dialogs import CAUTION, add_ok_cancel, folder_row, muted_note
 
 WHOLE_POSE = "whole pose"
 
@@ -46,16 +45,9 @@ class WhoDialog(QDialog):
             self.list.setCurrentRow(0)
         self.list.itemDoubleClicked.connect(lambda *_: self.accept())
         lay.addWidget(self.list)
-        note = QLabel("Kinemark remembers the choice for this project on this computer; change it with "
-                      "Project ▸ Who is working…")
-        note.setObjectName("muted")
-        note.setWordWrap(True)
-        lay.addWidget(note)
-        bb = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
-        bb.button(QDialogButtonBox.Ok).setText("That's me")
-        bb.accepted.connect(self.accept)
-        bb.rejected.connect(self.reject)
-        lay.addWidget(bb)
+        lay.addWidget(muted_note("Kinemark remembers the choice for this project on this computer; change it "
+                                 "with Project ▸ Who is working…"))
+        add_ok_cancel(self, lay, "That's me")
         self.resize(440, 320)
 
     def chosen(self) -> str | None:
@@ -193,16 +185,9 @@ class NotesDialog(QDialog):
         rm.setAutoDefault(False)
         rm.clicked.connect(self._remove)
         right.addWidget(rm)
-        hint = QLabel("Pick a keypoint in the picture or the list, type a note and press Enter; add as many "
-                      "as needed. The annotator sees each note on its keypoint.")
-        hint.setObjectName("muted")
-        hint.setWordWrap(True)
-        right.addWidget(hint)
-        self.buttons = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
-        self.buttons.button(QDialogButtonBox.Ok).setText("Send back")
-        self.buttons.accepted.connect(self._finish)
-        self.buttons.rejected.connect(self.reject)
-        right.addWidget(self.buttons)
+        right.addWidget(muted_note("Pick a keypoint in the picture or the list, type a note and press Enter; "
+                                   "add as many as needed. The annotator sees each note on its keypoint."))
+        self.buttons = add_ok_cancel(self, right, "Send back", self._finish)
         lay.addLayout(right, 3)
         if current is not None and 0 <= current < len(self.names):
             self.about.setCurrentIndex(current + 1)
@@ -259,14 +244,9 @@ class ExportDialog(QDialog):
         self.setWindowTitle("Export accepted labels")
         lay = QVBoxLayout(self)
         form = QFormLayout()
-        row = QHBoxLayout()
         self.folder = QLineEdit(default_folder)
         self.folder.setPlaceholderText("a new or empty folder")
-        pick = QPushButton("Choose…")
-        pick.clicked.connect(self._pick)
-        row.addWidget(self.folder, 1)
-        row.addWidget(pick)
-        form.addRow("Folder", row)
+        form.addRow("Folder", folder_row(self, self.folder, "Export folder"))
         lay.addLayout(form)
 
         self.split = QCheckBox("Split by participant (each participant in exactly one part)")
@@ -293,34 +273,20 @@ class ExportDialog(QDialog):
 
         self.deid = QCheckBox("De-identify: blur faces, pseudonymous names, no file names, folders or dates")
         lay.addWidget(self.deid)
-        self.deid_note = QLabel(deid_caution)
-        self.deid_note.setObjectName("muted")
-        self.deid_note.setWordWrap(True)
+        self.deid_note = muted_note(deid_caution)
         self.deid_note.setContentsMargins(24, 0, 0, 0)
         lay.addWidget(self.deid_note)
 
         self.what = QLabel("")
         self.what.setWordWrap(True)
         lay.addWidget(self.what)
-        c = QLabel(CAUTION)
-        c.setObjectName("muted")
-        c.setWordWrap(True)
-        lay.addWidget(c)
-        bb = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
-        bb.button(QDialogButtonBox.Ok).setText("Export")
-        bb.accepted.connect(self._finish)
-        bb.rejected.connect(self.reject)
-        lay.addWidget(bb)
+        lay.addWidget(muted_note(CAUTION))
+        add_ok_cancel(self, lay, "Export", self._finish)
         self.split.toggled.connect(self._update)
         self.deid.toggled.connect(self._update)
         self._update()
         self.setMinimumWidth(640)
         self.adjustSize()
-
-    def _pick(self):
-        d = QFileDialog.getExistingDirectory(self, "Export folder")
-        if d:
-            self.folder.setText(d)
 
     @property
     def bundle(self) -> bool:

@@ -67,24 +67,38 @@ class FrameStrip(QWidget):
         p.end()
 
 
-class PoseMap(QWidget):
-    def __init__(self, parent=None):
+class _Figure(QWidget):
+    """One of the page's two pictures: its data, a growing size, and a titled background."""
+
+    def __init__(self, data, min_w: int, min_h: int, parent=None):
         super().__init__(parent)
-        self.data = Coverage()
-        self.setMinimumSize(320, 300)
+        self.data = data
+        self.setMinimumSize(min_w, min_h)
         self.setSizePolicy(QSizePolicy.Expanding, QSizePolicy.Expanding)
 
-    def set_data(self, data: Coverage):
+    def set_data(self, data):
         self.data = data
         self.update()
 
-    def paintEvent(self, e):
+    def _begin(self, title: str) -> QPainter:
+        """A painter on the widget, the background filled and ``title`` drawn at the top left."""
         p = QPainter(self)
         p.setRenderHint(QPainter.Antialiasing)
         p.fillRect(self.rect(), QColor(theme.BASE))
         p.setPen(QColor(theme.TEXT))
         p.setFont(_small(self, 0.5))
-        p.drawText(QRectF(14, 8, self.width() - 28, 20), Qt.AlignLeft, "Pose map")
+        p.drawText(QRectF(14, 8, self.width() - 28, 20), Qt.AlignLeft, title)
+        return p
+
+
+class PoseMap(_Figure):
+    data: Coverage
+
+    def __init__(self, parent=None):
+        super().__init__(Coverage(), 320, 300, parent)
+
+    def paintEvent(self, e):
+        p = self._begin("Pose map")
         p.setFont(_small(self))
         p.setPen(QColor(theme.MUTED))
         d = self.data
@@ -158,26 +172,15 @@ class PoseMap(QWidget):
         p.end()
 
 
-class KeypointChart(QWidget):
+class KeypointChart(_Figure):
     STATES = ("prefilled", "drafting", "in_review", "accepted", "returned")
+    data: KeypointFigures | None
 
     def __init__(self, parent=None):
-        super().__init__(parent)
-        self.data: KeypointFigures | None = None
-        self.setMinimumSize(420, 300)
-        self.setSizePolicy(QSizePolicy.Expanding, QSizePolicy.Expanding)
-
-    def set_data(self, data: KeypointFigures):
-        self.data = data
-        self.update()
+        super().__init__(None, 420, 300, parent)
 
     def paintEvent(self, e):
-        p = QPainter(self)
-        p.setRenderHint(QPainter.Antialiasing)
-        p.fillRect(self.rect(), QColor(theme.BASE))
-        p.setPen(QColor(theme.TEXT))
-        p.setFont(_small(self, 0.5))
-        p.drawText(QRectF(14, 8, self.width() - 28, 20), Qt.AlignLeft, "Keypoints")
+        p = self._begin("Keypoints")
         d = self.data
         if d is None:
             p.end()

@@ -4,16 +4,14 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from PySide6.QtCore import QRect, QSize, Qt, Signal
-from PySide6.QtGui import QColor, QFont, QIcon, QImage, QPainter, QPixmap
-from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QLabel, QListWidget, QListWidgetItem,
-                               QProgressBar, QPushButton, QStyle, QStyledItemDelegate, QVBoxLayout, QWidget)
+from PySide6.QtCore import Signal
+from PySide6.QtGui import QImage
+from PySide6.QtWidgets import QLabel, QListWidgetItem, QProgressBar, QWidget
 
 from ...core.model import ACCEPTED, IN_REVIEW
-from .. import theme
+from .common import DONE, entry_list, fill_entries, list_panel_head, select_entry, thumbnail_icon
 
 DEFAULT_TARGET = 200
-THUMB_H = 54
 
 
 @dataclass(frozen=True)
@@ -66,74 +64,14 @@ def load_live_queue(project, batch: int = 50):
         return None, entries, note
 
 
-TITLE, REASONS, DONE = Qt.UserRole + 1, Qt.UserRole + 2, Qt.UserRole + 3
-
-
-class _EntryDelegate(QStyledItemDelegate):
-    """Thumbnail on the left; the frame in bright text, the reasons below it in muted text."""
-
-    def sizeHint(self, option, index):
-        return QSize(option.rect.width() or 240, THUMB_H + 22)
-
-    def paint(self, p: QPainter, option, index):
-        p.save()
-        r = option.rect
-        if option.state & QStyle.State_Selected:
-            p.fillRect(r, QColor(theme.RAISED))
-            p.fillRect(QRect(r.left(), r.top(), 3, r.height()), QColor(theme.SKY_BLUE))
-        icon = index.data(Qt.DecorationRole)
-        tw = int(THUMB_H * 16 / 9)
-        if icon is not None:
-            pm = icon.pixmap(QSize(tw, THUMB_H))
-            x = r.left() + 8 + (tw - pm.width()) // 2
-            p.drawPixmap(x, r.top() + 6, pm)
-        done = bool(index.data(DONE))
-        left = r.left() + tw + 16
-        text_r = QRect(left, r.top() + 5, r.right() - left - 6, r.height() - 10)
-        f = QFont(option.font)
-        p.setFont(f)
-        p.setPen(QColor(theme.FAINT if done else theme.TEXT))
-        fm = p.fontMetrics()
-        title = fm.elidedText(index.data(TITLE) or "", Qt.ElideRight, text_r.width())
-        p.drawText(text_r.adjusted(0, 0, 0, -(text_r.height() - fm.height())), Qt.AlignLeft, title)
-        f2 = QFont(f)
-        f2.setPointSizeF(max(f.pointSizeF() - 1, 7))
-        p.setFont(f2)
-        p.setPen(QColor(theme.FAINT if done else theme.MUTED))
-        body = text_r.adjusted(0, fm.height() + 2, 0, 0)
-        step = p.fontMetrics().lineSpacing()
-        body.setHeight(max(1, body.height() // step) * step)
-        p.setClipRect(body)                  # whole lines only; the tooltip has it all
-        p.drawText(body, Qt.AlignLeft | Qt.TextWordWrap, "handed in" if done else (index.data(REASONS) or ""))
-        p.restore()
-
-
-def _placeholder(w: int, h: int) -> QIcon:
-    pm = QPixmap(w, h)
-    pm.fill(QColor(theme.RAISED))
-    return QIcon(pm)
-
-
 class QueuePanel(QWidget):
     chosen = Signal(int)          # frame id
     rerank = Signal()
 
     def __init__(self, parent=None):
         super().__init__(parent)
-        lay = QVBoxLayout(self)
-        lay.setContentsMargins(8, 8, 8, 8)
-        lay.setSpacing(6)
-        head = QHBoxLayout()
-        title = QLabel("Up next")
-        title.setObjectName("heading")
-        head.addWidget(title)
-        head.addStretch(1)
-        self.button = QPushButton("Re-rank")
-        self.button.setToolTip("rank the frames again with everything labelled so far")
-        self.button.setFocusPolicy(Qt.NoFocus)
-        self.button.clicked.connect(self.rerank)
-        head.addWidget(self.button)
-        lay.addLayout(head)
+        lay, self.button = list_panel_head(self, "Up next", "Re-rank",
+                                           "rank the frames again with everything labelled so far", self.rerank)
         self.progress_text = QLabel("")
         self.progress_text.setObjectName("muted")
         lay.addWidget(self.progress_text)
@@ -146,14 +84,7 @@ class QueuePanel(QWidget):
         self.note.setWordWrap(True)
         self.note.setVisible(False)
         lay.addWidget(self.note)
-        self.list = QListWidget()
-        self.list.setIconSize(QSize(int(THUMB_H * 16 / 9), THUMB_H))
-        self.list.setItemDelegate(_EntryDelegate(self.list))
-        self.list.setUniformItemSizes(True)
-        self.list.setFocusPolicy(Qt.NoFocus)
-        self.list.setSelectionMode(QAbstractItemView.SingleSelection)
-        self.list.setVerticalScrollMode(QAbstractItemView.ScrollPerPixel)
-        self.list.itemClicked.connect(lambda it: self.chosen.emit(int(it.data(Qt.UserRole))))
+        self.list = entry_list(self.chosen)
         lay.addWidget(self.list, 1)
         self.entries: list = []
         self._items: dict[int, QListWidgetItem] = {}
@@ -169,21 +100,10 @@ class QueuePanel(QWidget):
 
     def set_entries(self, entries, describe, note: str = "", states: dict | None = None):
         self.entries = list(entries)
-        self.list.clear()
-        self._items.clear()
+        fill_entries(self.list, self._items, self.entries, key=lambda e: e.frame_id, describe=describe,
+                     reasons=lambda e: "; ".join(e.reasons) if e.reasons else "")
         self.note.setText(note)
         self.note.setVisible(bool(note))
-        ph = _placeholder(int(THUMB_H * 16 / 9), THUMB_H)
-        for n, e in enumerate(self.entries, start=1):
-            reasons = "; ".join(e.reasons) if e.reasons else ""
-            title = f"{n}. {describe(e)}"
-            it = QListWidgetItem(ph, title)
-            it.setData(Qt.UserRole, int(e.frame_id))
-            it.setData(TITLE, title)
-            it.setData(REASONS, reasons)
-            it.setToolTip(f"{title}\n{reasons}")
-            self.list.addItem(it)
-            self._items[int(e.frame_id)] = it
         self.mark(states or {})
         if not self.entries:
             self.note.setText((note + "\n" if note else "") + "Nothing waiting: every frame is labelled.")
@@ -202,19 +122,12 @@ class QueuePanel(QWidget):
             it.setData(DONE, fid in self._done)
 
     def set_current(self, frame_id: int | None):
-        it = self._items.get(frame_id) if frame_id is not None else None
-        self.list.blockSignals(True)
-        if it is None:
-            self.list.clearSelection()
-        else:
-            self.list.setCurrentItem(it)
-            self.list.scrollToItem(it)
-        self.list.blockSignals(False)
+        select_entry(self.list, self._items.get(frame_id) if frame_id is not None else None)
 
     def set_thumbnail(self, frame_id: int, image: QImage):
         it = self._items.get(frame_id)
         if it is not None:
-            it.setIcon(QIcon(QPixmap.fromImage(image)))
+            it.setIcon(thumbnail_icon(image))
 
     def next_after(self, frame_id: int | None) -> int | None:
         """The next entry not yet handed in, after ``frame_id`` (wrapping round)."""

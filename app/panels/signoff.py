@@ -9,13 +9,12 @@ from __future__ import annotations
 
 import html
 
-from PySide6.QtCore import QSize, Qt, Signal
-from PySide6.QtGui import QIcon, QImage, QPixmap
-from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QLabel, QListWidget, QListWidgetItem,
-                               QPushButton, QScrollArea, QVBoxLayout, QWidget)
+from PySide6.QtCore import Qt, Signal
+from PySide6.QtGui import QImage
+from PySide6.QtWidgets import QHBoxLayout, QLabel, QListWidgetItem, QPushButton, QScrollArea, QVBoxLayout, QWidget
 
 from .. import theme
-from .queue import REASONS, THUMB_H, TITLE, _EntryDelegate, _placeholder
+from .common import entry_list, fill_entries, list_panel_head, select_entry, thumbnail_icon
 
 
 def flag_text(flag, names) -> str:
@@ -40,20 +39,9 @@ class SignoffList(QWidget):
 
     def __init__(self, parent=None):
         super().__init__(parent)
-        lay = QVBoxLayout(self)
-        lay.setContentsMargins(8, 8, 8, 8)
-        lay.setSpacing(6)
-        head = QHBoxLayout()
-        title = QLabel("Waiting for sign-off")
-        title.setObjectName("heading")
-        head.addWidget(title)
-        head.addStretch(1)
-        self.reload = QPushButton("Refresh")
-        self.reload.setFocusPolicy(Qt.NoFocus)
-        self.reload.setToolTip("read the handed-in frames again (someone else may have handed in or signed off)")
-        self.reload.clicked.connect(self.refresh)
-        head.addWidget(self.reload)
-        lay.addLayout(head)
+        lay, self.reload = list_panel_head(
+            self, "Waiting for sign-off", "Refresh",
+            "read the handed-in frames again (someone else may have handed in or signed off)", self.refresh)
         self.count = QLabel("")
         self.count.setObjectName("muted")
         self.count.setWordWrap(True)
@@ -62,33 +50,15 @@ class SignoffList(QWidget):
         self.clean.setFocusPolicy(Qt.NoFocus)
         self.clean.clicked.connect(self.accept_clean)
         lay.addWidget(self.clean)
-        self.list = QListWidget()
-        self.list.setIconSize(QSize(int(THUMB_H * 16 / 9), THUMB_H))
-        self.list.setItemDelegate(_EntryDelegate(self.list))
-        self.list.setUniformItemSizes(True)
-        self.list.setFocusPolicy(Qt.NoFocus)
-        self.list.setSelectionMode(QAbstractItemView.SingleSelection)
-        self.list.setVerticalScrollMode(QAbstractItemView.ScrollPerPixel)
-        self.list.itemClicked.connect(lambda it: self.chosen.emit(int(it.data(Qt.UserRole))))
+        self.list = entry_list(self.chosen)
         lay.addWidget(self.list, 1)
         self.items: list = []
         self._rows: dict[int, QListWidgetItem] = {}
 
     def set_items(self, items, describe):
         self.items = list(items)
-        self.list.clear()
-        self._rows.clear()
-        ph = _placeholder(int(THUMB_H * 16 / 9), THUMB_H)
-        for n, it in enumerate(self.items, start=1):
-            title = f"{n}. {describe(it)}"
-            why = reasons_text(it)
-            row = QListWidgetItem(ph, title)
-            row.setData(Qt.UserRole, int(it.annotation_id))
-            row.setData(TITLE, title)
-            row.setData(REASONS, why)
-            row.setToolTip(f"{title}\n{why}")
-            self.list.addItem(row)
-            self._rows[int(it.annotation_id)] = row
+        fill_entries(self.list, self._rows, self.items, key=lambda it: it.annotation_id, describe=describe,
+                     reasons=reasons_text)
         self._count()
 
     def _count(self):
@@ -124,21 +94,14 @@ class SignoffList(QWidget):
         return others[0] if others else None
 
     def set_current(self, annotation_id: int | None):
-        row = self._rows.get(annotation_id) if annotation_id is not None else None
-        self.list.blockSignals(True)
-        if row is None:
-            self.list.clearSelection()
-        else:
-            self.list.setCurrentItem(row)
-            self.list.scrollToItem(row)
-        self.list.blockSignals(False)
+        select_entry(self.list, self._rows.get(annotation_id) if annotation_id is not None else None)
 
     def set_thumbnail(self, frame_id: int, image: QImage):
         for it in self.items:
             if it.frame_id == frame_id:
                 row = self._rows.get(it.annotation_id)
                 if row is not None:
-                    row.setIcon(QIcon(QPixmap.fromImage(image)))
+                    row.setIcon(thumbnail_icon(image))
 
     def clear(self):
         self.items = []
