@@ -48,7 +48,11 @@ class _Job(QRunnable):
             def progress(done, total, message=""):
                 if self.cancel.is_set():
                     raise Cancelled()
-                self.signals.progress.emit(int(done), int(total), str(message))
+                try:
+                    self.signals.progress.emit(int(done), int(total), str(message))
+                except RuntimeError:        # the window went away: nobody to tell, so stop
+                    self.cancel.set()
+                    raise Cancelled() from None
 
             if self.root is not None:
                 from ..core.project import Project
@@ -57,12 +61,20 @@ class _Job(QRunnable):
             if self.cancel.is_set():
                 raise Cancelled()
         except BaseException as e:  # noqa: BLE001 - everything is reported to the GUI thread
-            self.signals.failed.emit(e, traceback.format_exc())
+            self._tell(self.signals.failed, e, traceback.format_exc())
         else:
-            self.signals.done.emit(result)
+            self._tell(self.signals.done, result)
         finally:
             if project is not None:
                 project.close()
+
+
+    @staticmethod
+    def _tell(signal, *args):
+        try:
+            signal.emit(*args)
+        except RuntimeError:            # the receiving window was closed meanwhile
+            pass
 
 
 class Background(QObject):

@@ -86,7 +86,7 @@ def run(args=None):
         QSettings.setPath(QSettings.NativeFormat, QSettings.UserScope, str(tmp / "settings"))
         w = MainWindow(settings=QSettings(str(tmp / "settings.ini"), QSettings.IniFormat))
         w.resize(1600, 1000)
-        w.open_project(tmp / "proj")
+        w.open_project(tmp / "proj", auto_prefill=False)   # measure the workspace, not a model run beside it
         w.show()
         settle(app, w)
         print(f"gui: 1080p test video of {steps * every + every} frames written in {t_video:.1f} s, "
