@@ -131,16 +131,21 @@ class ClipStrip(QWidget):
     def mousePressEvent(self, e):
         if e.button() == Qt.LeftButton:
             self._drag = True
-            self._hover = self.nearest(e.position().x())
-            self.update()
+            self._hover = None          # a new press always goes, even to the frame of the last one
+            self._scrub_to(e.position().x())
 
     def mouseMoveEvent(self, e):
-        if self._drag:
-            self._hover = self.nearest(e.position().x())
+        if self._drag:                  # scrubbing: the frame follows the pointer
+            self._scrub_to(e.position().x())
 
     def mouseReleaseEvent(self, e):
         if self._drag and e.button() == Qt.LeftButton:
             self._drag = False
-            fid = self.nearest(e.position().x())
-            if fid is not None:
-                self.chosen.emit(fid)
+            self._scrub_to(e.position().x())
+
+    def _scrub_to(self, x: float):
+        fid = self.nearest(x)
+        if fid is not None and fid != self._hover:
+            self._hover = fid
+            self.update()
+            self.chosen.emit(fid)

@@ -502,3 +502,30 @@ def test_up_next_folds_new_labels_in_without_reranking(qtbot, tmp_path, monkeypa
     w.confirm(current_only=False)
     assert target not in [e.frame_id for e in w._live.next(50)]     # folded in, not re-ranked
     assert len(rebuilds) == 1
+
+
+def test_clip_strip_scrubs_while_dragging(window, qtbot):
+    """Pressing on the clip strip and moving shows each passed frame before the button is let go."""
+    from PySide6.QtCore import QPointF
+    from PySide6.QtGui import QMouseEvent
+    from PySide6.QtCore import QEvent
+    strip = window.strip
+    w = strip.width()
+    y = strip.height() - 8
+
+    def send(kind, x, buttons):
+        ev = QMouseEvent(kind, QPointF(x, y), QPointF(strip.mapToGlobal(QPoint(int(x), int(y)))),
+                         Qt.LeftButton, buttons, Qt.NoModifier)
+        strip.event(ev) if kind != QEvent.MouseMove else strip.mouseMoveEvent(ev)
+    first, last = window.order[0], window.order[-1]
+    send(QEvent.MouseButtonPress, 5, Qt.LeftButton)
+    assert window.frame_id == first
+    seen = {window.frame_id}
+    for x in range(5, w - 5, max(1, (w - 10) // 20)):
+        send(QEvent.MouseMove, x, Qt.LeftButton)
+        seen.add(window.frame_id)
+    assert window.frame_id == last and seen == set(window.order)     # every sampled frame passed by
+    send(QEvent.MouseButtonRelease, w - 5, Qt.NoButton)
+    window.go(first)
+    send(QEvent.MouseButtonPress, w - 5, Qt.LeftButton)               # same spot again: still goes
+    assert window.frame_id == last
