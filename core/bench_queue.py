@@ -135,6 +135,10 @@ def run(budgets=(25, 50, 100, 200), seeds=(0, 1), project_dir="sample_project", 
     from .store import DB_NAME
     root = Path(project_dir)
     clips = Path(clips_dir) if clips_dir else root / "clips"
+    if not (clips / "scenario.json").exists():
+        from .errors import KinemarkError
+        raise KinemarkError(f"no scenario clips in {clips}: run this from the repository root, or pass "
+                            f"--project with the sample project's folder")
     if not (root / DB_NAME).exists():
         say(f"bench queue: {root} has no project yet; building it and proposing every frame first "
             f"('kinemark demo' does the same)")

@@ -378,6 +378,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--frames", type=int, default=None, help="override the benchmark size")
     s.add_argument("--seconds", type=float, default=None, help="team: how long the load runs (default 60)")
     s.add_argument("--db", help="team: PostgreSQL connection string (default $KINEMARK_TEST_PG)")
+    s.add_argument("--project", help="queue: the sample project's folder (default sample_project)")
     s.add_argument("--cases", type=int, default=None, help="crash: kills (default 50); fuzz: COCO files (10000)")
     s.set_defaults(fn=cmd_bench)
     return ap
