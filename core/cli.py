@@ -85,11 +85,19 @@ def cmd_add(a):
 def cmd_info(a):
     from . import ops
     with _open(a.dir) as p:
+        if a.set_target is not None:
+            if a.set_target < 1:
+                raise KinemarkError("the target must be at least one frame")
+            p.store.set_meta("target_frames", str(a.set_target), user_id=p.user(a.user).id)
+            print(f"target: {a.set_target} accepted frames")
         d = ops.info(p)
+        d["target"] = p.store.get_meta("target_frames")
     print(f"project   {d['root']}")
     print(f"skeleton  {d['skeleton']} ({d['keypoints']} keypoints), schema v{d['schema_version']}")
     print(f"media     {d['media']}   frames {d['frames']}")
     print("states    " + "  ".join(f"{k} {v}" for k, v in d["states"].items()))
+    if d.get("target"):
+        print(f"target    {d['states'].get('accepted', 0)} of {d['target']} frames accepted")
     print("by participant (media, frames, accepted):")
     for code, m, f, acc in d["participants"]:
         print(f"  {code:<12} {m:>5} {f:>7} {acc:>7}")
@@ -281,6 +289,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("info", help="counts by state and by participant")
     s.add_argument("dir")
+    s.add_argument("--set-target", type=int, metavar="N",
+                   help="how many accepted frames the study aims for (shown as progress in the workspace)")
     s.set_defaults(fn=cmd_info)
 
     s = sub.add_parser("export", help="write COCO keypoints (accepted labels by default)")
@@ -399,6 +409,10 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("kinemark: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:        # output piped into e.g. `head`, which stopped reading
+        import os
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except Exception as e:  # a bug: say so in one line unless --debug
         if debug:
             raise

@@ -54,3 +54,14 @@ def test_no_traceback_from_the_installed_command(tmp_path):
     r = subprocess.run([sys.executable, "-m", "kinemark.core.cli", "--debug", "add", str(tmp_path / "p"),
                         str(tmp_path / "bad.mp4")], capture_output=True, text=True)
     assert r.returncode != 0 and "Traceback" in r.stderr
+
+
+def test_info_sets_the_project_target(tmp_path, capsys):
+    proj = tmp_path / "p"
+    assert run("new", proj) == 0
+    assert run("info", proj, "--set-target", "150") == 0
+    assert "0 of 150 frames accepted" in capsys.readouterr().out
+    from kinemark.core.project import Project
+    with Project.open(proj) as p:
+        assert p.store.get_meta("target_frames") == "150"
+    assert run("info", proj, "--set-target", "0") == 2
