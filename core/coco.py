@@ -19,6 +19,7 @@ from pathlib import Path, PurePosixPath, PureWindowsPath
 import numpy as np
 
 from .errors import KinemarkError
+from .jsonfile import read_json
 from .metrics import bbox_from_keypoints
 from .skeleton import Skeleton
 
@@ -276,19 +277,4 @@ def plan_import(data, skeleton: Skeleton, images_root: Path, *, source: str = "C
 
 
 def load_json(path: Path):
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise KinemarkError("file not found", where=str(path)) from None
-    except (OSError, UnicodeDecodeError) as e:
-        raise KinemarkError(f"cannot read: {e}", where=str(path)) from None
-    try:
-        return json.loads(text)
-    except json.JSONDecodeError as e:
-        raise KinemarkError(f"not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})",
-                            where=str(path)) from None
-    except RecursionError:
-        raise KinemarkError("not a usable JSON file: its lists or objects are nested too deeply",
-                            where=str(path)) from None
-    except ValueError as e:     # e.g. an integer literal longer than Python converts (4300 digits)
-        raise KinemarkError(f"not a usable JSON file: {e}", where=str(path)) from None
+    return read_json(path)

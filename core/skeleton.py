@@ -210,13 +210,5 @@ def load_skeleton(spec: str | Path) -> Skeleton:
     if not path.exists():
         raise KinemarkError(
             f"no built-in skeleton {str(spec)!r} and no such file (built in: {', '.join(BUILTIN)})")
-    try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as e:
-        raise KinemarkError(f"cannot read skeleton file: {e}", where=str(path)) from None
-    try:
-        data = json.loads(text)
-    except json.JSONDecodeError as e:
-        raise KinemarkError(f"not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})",
-                            where=str(path)) from None
-    return _parse(data, str(path))
+    from .jsonfile import read_json
+    return _parse(read_json(path, what="skeleton file"), str(path))

@@ -33,7 +33,6 @@ Pixel-centre convention: model-input pixel u has its centre at integer u
 """
 from __future__ import annotations
 
-import json
 import math
 from pathlib import Path
 
@@ -41,6 +40,7 @@ import cv2
 import numpy as np
 
 from ..errors import KinemarkError
+from ..jsonfile import read_json
 from ..skeleton import Skeleton, derive_flip_pairs
 from .base import PoseAdapter, PoseResult, Region, file_sha256
 from .crop import apply_affine, crop_to_frame_matrix, extract_crop, whole_frame_region
@@ -183,16 +183,7 @@ class HeatmapModelConfig:
         if not path.exists():
             raise KinemarkError("model description file not found (it must sit beside the "
                                 f".onnx file and end in {CONFIG_SUFFIX})", where=str(path))
-        try:
-            text = path.read_text(encoding="utf-8")
-        except (OSError, UnicodeDecodeError) as e:
-            raise KinemarkError(f"cannot read model description: {e}", where=str(path)) from None
-        try:
-            data = json.loads(text)
-        except json.JSONDecodeError as e:
-            raise KinemarkError(f"not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})",
-                                where=str(path)) from None
-        return cls(data, source=str(path))
+        return cls(read_json(path, what="model description"), source=str(path))
 
 
 def _dim(d):
