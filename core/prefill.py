@@ -60,33 +60,50 @@ def candidate_frames(project, which: str = "unlabelled"):
     return [f for f in frames if f.id not in touched]
 
 
+def _proposals(p, adapter, items, cancel, max_gap):
+    """Yield (frame, PoseResult or None, error message or None) for ``items`` in order."""
+    prev_media, prev_index, prev_kps = None, None, None
+    for f in items:
+        if cancel.is_set():
+            break
+        try:
+            img = p.read_frame(f.media_id, f.frame_index)
+            hint = None
+            if (prev_media == f.media_id and prev_kps is not None
+                    and 0 < f.frame_index - prev_index <= max_gap):
+                hint = prev_kps
+            res = adapter.predict(img, previous=hint)
+            ok = res.score >= 0.5 and np.count_nonzero(res.keypoints[:, 2] > 0) >= 4
+            prev_media, prev_index, prev_kps = f.media_id, f.frame_index, (res.keypoints if ok else None)
+            yield f, res, None
+        except Exception as e:  # isolate: one bad frame never stops the batch
+            msg = str(e) if isinstance(e, KinemarkError) else f"{type(e).__name__}: {e}"
+            prev_kps = None
+            yield f, None, msg
+
+
 def _worker(root, make_adapter, items, out_q, cancel, max_gap):
     from .project import Project
     try:
         adapter = make_adapter()
         with Project.open(root) as p:
-            prev_media, prev_index, prev_kps = None, None, None
-            for f in items:
-                if cancel.is_set():
-                    break
-                try:
-                    img = p.read_frame(f.media_id, f.frame_index)
-                    hint = None
-                    if (prev_media == f.media_id and prev_kps is not None
-                            and 0 < f.frame_index - prev_index <= max_gap):
-                        hint = prev_kps
-                    res = adapter.predict(img, previous=hint)
-                    out_q.put((f, res, None))
-                    ok = res.score >= 0.5 and np.count_nonzero(res.keypoints[:, 2] > 0) >= 4
-                    prev_media, prev_index, prev_kps = f.media_id, f.frame_index, (res.keypoints if ok else None)
-                except Exception as e:  # isolate: one bad frame never stops the batch
-                    msg = str(e) if isinstance(e, KinemarkError) else f"{type(e).__name__}: {e}"
-                    out_q.put((f, None, msg))
-                    prev_kps = None
+            for item in _proposals(p, adapter, items, cancel, max_gap):
+                out_q.put(item)
     except Exception as e:
         out_q.put((None, None, str(e) if isinstance(e, KinemarkError) else f"{type(e).__name__}: {e}"))
     finally:
         out_q.put(("done", None, None))
+
+
+def _from_workers(threads, out_q):
+    """Yield the workers' items until every worker has said it is done."""
+    running = len(threads)
+    while running:
+        item = out_q.get()
+        if item[0] == "done":
+            running -= 1
+            continue
+        yield item
 
 
 def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None, make_adapter=None,
@@ -137,23 +154,25 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
     for i, mid in enumerate(sorted(groups, key=lambda m: -len(groups[m]))):
         min(shards, key=len).extend(groups[mid])
     cancel = cancel or threading.Event()
-    out_q: queue.Queue = queue.Queue(maxsize=64)
     threads = []
-    for n, shard in enumerate(shards):
-        mk = (lambda a=adapter: a) if n == 0 else make_adapter
-        t = threading.Thread(target=_worker, args=(project.root, mk, shard, out_q, cancel, max_gap),
-                             daemon=True)
-        t.start()
-        threads.append(t)
+    if len(shards) == 1:
+        # one worker: run in this thread. A second thread would only compete with ONNX
+        # Runtime's own threads for the CPU while it stores.
+        items = _proposals(project, adapter, shards[0], cancel, max_gap)
+    else:
+        out_q: queue.Queue = queue.Queue(maxsize=64)
+        for n, shard in enumerate(shards):
+            mk = (lambda a=adapter: a) if n == 0 else make_adapter
+            t = threading.Thread(target=_worker, args=(project.root, mk, shard, out_q, cancel, max_gap),
+                                 daemon=True)
+            t.start()
+            threads.append(t)
+        items = _from_workers(threads, out_q)
 
     proposal_ids, ann_ids = [], []
-    running, n_done = len(threads), 0
+    n_done = 0
     store = project.store
-    while running:
-        f, res, err = out_q.get()
-        if f == "done":
-            running -= 1
-            continue
+    for f, res, err in items:
         if f is None:   # a worker could not start
             report.failed.append((None, err))
             continue

@@ -546,3 +546,56 @@ def test_degenerate_drawn_region_is_a_user_error(tmp_path):
     a = LandmarkAdapter(COCO17, _contract_model(tmp_path / "m.onnx", np.zeros((39, 5))))
     with pytest.raises(KinemarkError, match="too small"):
         a.predict(np.zeros((100, 100, 3), np.uint8), Region(50, 50, 0, 40))
+
+
+# -- heatmap refinement (the refinement step the published MediaPipe pose pipeline
+# runs after its landmark model: a 7 x 7 window, minimum confidence 0.5) -----------
+
+def _refine_one_point_at_a_time(lm, hm, kernel=7, min_confidence=0.5):
+    """The same step written as the plain per-point slice, as a reference."""
+    out = lm.copy()
+    h, w = hm.shape[:2]
+    stride = 256 / w
+    half = kernel // 2
+    for j in range(33):
+        col, row = int(np.floor(lm[j, 0] / stride)), int(np.floor(lm[j, 1] / stride))
+        if not (0 <= col < w and 0 <= row < h):
+            continue
+        r0, r1 = max(0, row - half), min(h, row + half + 1)
+        c0, c1 = max(0, col - half), min(w, col + half + 1)
+        win = 1.0 / (1.0 + np.exp(-hm[r0:r1, c0:c1, j].astype(np.float64)))
+        if win.max() < min_confidence:
+            continue
+        rr, cc = np.mgrid[r0:r1, c0:c1]
+        out[j, 0] = ((win * cc).sum() / win.sum() + 0.5) * stride
+        out[j, 1] = ((win * rr).sum() / win.sum() + 0.5) * stride
+    return out
+
+
+def test_refine_batch_matches_the_per_point_slice():
+    rng = np.random.default_rng(4)
+    lms = rng.uniform(-20, 276, size=(3, 39, 5))        # some points off the map
+    hms = rng.normal(-1.0, 3.0, size=(3, 64, 64, 39)).astype(np.float32)
+    got = lmk._refine(lms, hms)
+    for b in range(3):
+        want = _refine_one_point_at_a_time(lms[b], hms[b])
+        np.testing.assert_allclose(got[b], want, rtol=0, atol=1e-9)
+        np.testing.assert_allclose(lmk._refine(lms[b], hms[b]), want, rtol=0, atol=1e-9)
+    assert not np.allclose(got[:, :33, :2], lms[:, :33, :2])   # it really moved points
+
+
+def test_refine_finds_the_centre_of_a_symmetric_blob():
+    # the weighted mean of a distribution symmetric about a point is that point
+    # (handbook fact); here a blob centred on heatmap cell (20, 30), i.e. input pixel
+    # centre (4 * 30 + 2, 4 * 20 + 2) under the cell convention the docstring names
+    yy, xx = np.mgrid[0:64, 0:64]
+    blob = 8.0 * np.exp(-((xx - 30) ** 2 + (yy - 20) ** 2) / 4.0) - 4.0
+    hm = np.repeat(blob[:, :, None], 39, axis=2).astype(np.float32)
+    lm = np.zeros((39, 5))
+    # regressed inside the peak's cell but off its centre: the window is then centred
+    # on the peak, and the weighted mean moves the point to the cell centre
+    lm[:, 0], lm[:, 1] = 4 * 30 + 0.3, 4 * 20 + 3.6
+    out = lmk._refine(lm, hm)
+    np.testing.assert_allclose(out[:33, 0], 4 * 30 + 2, atol=1e-9)
+    np.testing.assert_allclose(out[:33, 1], 4 * 20 + 2, atol=1e-9)
+    np.testing.assert_array_equal(out[33:], lm[33:])    # auxiliary points are not refined

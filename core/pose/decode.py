@@ -242,21 +242,72 @@ def multipeak_entropy(heatmaps: np.ndarray, *, threshold_ratio: float = 0.1,
     hm = _finite(_as_heatmaps(heatmaps)).astype(np.float32)
     k = hm.shape[0]
     out = np.full(k, np.nan)
-    kern = np.ones((window, window), np.uint8)
-    for i in range(k):
+    if k == 0:
+        return out
+    top = hm.max(axis=(1, 2))
+    low = hm.min(axis=(1, 2))
+    has_peaks = (top > 0) & (top - low > 1e-12 * np.maximum(1.0, np.abs(top)))
+    if not has_peaks.any():
+        return out
+    # all channels at once: a window x window maximum filter, cells outside the map ignored
+    # (the same neighbourhood maximum as cv2.dilate with its default border)
+    dil = _max_filter(hm, window)
+    mask = (hm >= dil) & (hm > (threshold_ratio * top)[:, None, None]) & has_peaks[:, None, None]
+    # a peak cell with another peak cell beside it is part of a plateau; only those
+    # channels need the (slower) connected-component merge
+    plateau = (mask & _has_marked_neighbour(mask)).any(axis=(1, 2))
+    simple = has_peaks & ~plateau
+    if simple.any():
+        cells = np.flatnonzero(mask & simple[:, None, None])
+        chan = cells // (hm.shape[1] * hm.shape[2])   # channel of each peak cell
+        vals = hm.reshape(-1)[cells].astype(np.float64)   # every peak is > 0 here
+        p = vals / np.bincount(chan, weights=vals, minlength=k)[chan]
+        ent = -np.bincount(chan, weights=p * np.log(p), minlength=k)
+        out[simple] = ent[simple] + 0.0           # + 0.0 turns -0.0 into 0.0
+    for i in np.flatnonzero(plateau):
         ch = hm[i]
-        top = float(ch.max())
-        if top <= 0 or top - float(ch.min()) <= 1e-12 * max(1.0, abs(top)):
-            continue
-        dil = cv2.dilate(ch, kern)
-        mask = (ch >= dil) & (ch > threshold_ratio * top)
-        nlab, labels = cv2.connectedComponents(mask.astype(np.uint8), connectivity=8)
+        nlab, labels = cv2.connectedComponents(mask[i].astype(np.uint8), connectivity=8)
         if nlab <= 1:
             continue
         vals = np.zeros(nlab)
-        np.maximum.at(vals, labels[mask], ch[mask].astype(np.float64))
+        np.maximum.at(vals, labels[mask[i]], ch[mask[i]].astype(np.float64))
         p = vals[1:]
         p = p / p.sum()
         p = p[p > 0]
-        out[i] = float(-(p * np.log(p)).sum()) + 0.0  # + 0.0 turns -0.0 into 0.0
+        out[i] = float(-(p * np.log(p)).sum()) + 0.0
+    return out
+
+
+def _max_filter(a: np.ndarray, window: int) -> np.ndarray:
+    """(K, H, W) maximum over each cell's window x window neighbourhood inside the map.
+
+    Separable (rows, then columns): a rectangle's maximum is the maximum of its
+    rows' maxima.
+    """
+    half = window // 2
+    out = a.copy()
+    for axis in (1, 2):
+        src = out.copy()
+        n = a.shape[axis]
+        for d in range(1, half + 1):
+            if d >= n:
+                break
+            lo = [slice(None)] * 3
+            hi = [slice(None)] * 3
+            lo[axis], hi[axis] = slice(0, n - d), slice(d, n)
+            np.maximum(out[tuple(lo)], src[tuple(hi)], out=out[tuple(lo)])
+            np.maximum(out[tuple(hi)], src[tuple(lo)], out=out[tuple(hi)])
+    return out
+
+
+def _has_marked_neighbour(mask: np.ndarray) -> np.ndarray:
+    """(K, H, W) bool: the cell has a True cell among its 8 neighbours (not itself)."""
+    k, h, w = mask.shape
+    pad = np.zeros((k, h + 2, w + 2), bool)
+    pad[:, 1:-1, 1:-1] = mask
+    out = np.zeros_like(mask)
+    for dy in (-1, 0, 1):
+        for dx in (-1, 0, 1):
+            if dy or dx:
+                out |= pad[:, 1 + dy:1 + dy + h, 1 + dx:1 + dx + w]
     return out
