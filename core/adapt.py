@@ -29,7 +29,8 @@ from .model import ACCEPTED, IN_REVIEW, PREFILLED, Changes
 # up to 1e5: with an unpenalised intercept that is nearly a constant per-joint shift
 LAMBDAS = (0.3, 1.0, 3.0, 10.0, 30.0, 100.0, 300.0, 1e3, 1e4, 1e5)
 MIN_FRAMES = 8
-TRIM = 3.0
+# training trims: residuals over 3x the joint's median, or none; cross-validation picks per joint
+TRIMS = (3.0, float("inf"))
 MIN_T = 2.0
 
 
@@ -116,6 +117,7 @@ class Correction:
     use: np.ndarray                 # (K,) bool: joints whose correction beat the raw model
     models: dict = field(default_factory=dict)    # joint -> (mu, sd, W, b)
     lam: dict = field(default_factory=dict)
+    trim: dict = field(default_factory=dict)      # joint -> the training trim chosen (inf: none)
     heldout_raw: dict = field(default_factory=dict)       # joint -> held-out mean OKS similarity, raw
     heldout_adapted: dict = field(default_factory=dict)   # joint -> the same, corrected
     summary: dict = field(default_factory=dict)
@@ -137,6 +139,7 @@ class Correction:
             "model_hash": self.model_hash, "use": self.use.astype(int).tolist(),
             "models": {str(j): [a.tolist() for a in m] for j, m in self.models.items()},
             "lam": {str(j): v for j, v in self.lam.items()},
+            "trim": {str(j): (v if np.isfinite(v) else None) for j, v in self.trim.items()},
             "heldout_raw": {str(j): v for j, v in self.heldout_raw.items()},
             "heldout_adapted": {str(j): v for j, v in self.heldout_adapted.items()},
             "summary": self.summary, "with_embedding": self.with_embedding})
@@ -147,23 +150,29 @@ class Correction:
         return cls(model_hash=d["model_hash"], use=np.array(d["use"], bool),
                    models={int(j): tuple(np.array(a) for a in m) for j, m in d["models"].items()},
                    lam={int(j): v for j, v in d["lam"].items()},
+                   trim={int(j): (float("inf") if v is None else v) for j, v in d.get("trim", {}).items()},
                    heldout_raw={int(j): v for j, v in d["heldout_raw"].items()},
                    heldout_adapted={int(j): v for j, v in d["heldout_adapted"].items()},
                    summary=d.get("summary", {}), with_embedding=d.get("with_embedding", False))
 
 
 def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
-                   lambdas=LAMBDAS, min_frames: int = MIN_FRAMES, trim: float = TRIM) -> Correction:
+                   lambdas=LAMBDAS, min_frames: int = MIN_FRAMES, trims=TRIMS) -> Correction:
     """Fit per-joint ridge corrections with participant-grouped cross-validation.
 
     Scored by what labelling cares about: the held-out mean per-keypoint OKS
     similarity exp(-d² / (2 s² k²)) (k = 2σ, s² = area, as pycocotools). A
     joint's correction is kept only if that held-out similarity beats the raw
     model's on the same held-out frames, by a paired t statistic above
-    ``MIN_T`` (chance gains on a small set are not taken). Training trims gross failures
-    (residuals over ``trim`` times the joint's median residual): a linear
-    correction is for systematic offsets, and a handful of wild misses would
-    otherwise pull it (a trimmed fit, common practice in robust regression).
+    ``MIN_T`` (chance gains on a small set are not taken).
+
+    Large residuals are either wild misses, which would pull a linear fit
+    off (trimming them is common practice in robust regression), or the very
+    systematic error the correction is for (say, one camera view where the
+    model always puts the knees too high). Which one a joint has is not known
+    beforehand, so the trim is a second hyperparameter, chosen with the
+    regularisation by the same participant-grouped cross-validation: each of
+    ``trims`` (multiples of the joint's median residual; ``inf`` is no trim).
     """
     N, K, _ = s.R.shape
     folds = _folds(s.groups)
@@ -180,32 +189,36 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
             continue
         rn = np.linalg.norm(np.where(ok[:, None], s.R[:, j], 0.0), axis=1)
         med = float(np.median(rn[ok]))
-        train_ok = ok & (rn <= max(trim * med, 1e-9))
 
         def sim(res, idx):
             d2 = (res ** 2).sum(axis=1)
             return np.exp(-d2 / var[j] / (s.area[idx] + np.spacing(1)) / 2)
         best = None
-        for lam in lambdas:
-            diffs, raws = [], []
-            for test in folds:
-                tr, te = train_ok & ~test, ok & test
-                if tr.sum() < 3 or te.sum() == 0:
+        for trim in trims:
+            train_ok = ok & (rn <= max(trim * med, 1e-9))
+            if best is not None and np.array_equal(train_ok, best[3]):
+                continue        # this trim keeps the same frames as one already tried
+            for lam in lambdas:
+                diffs, raws = [], []
+                for test in folds:
+                    tr, te = train_ok & ~test, ok & test     # scored on every held-out frame
+                    if tr.sum() < 3 or te.sum() == 0:
+                        continue
+                    m = ridge_fit(s.X[tr], s.R[tr, j], lam)
+                    pred = ridge_predict(m, s.X[te])
+                    r0 = sim(s.R[te, j], te)
+                    diffs.append(sim(s.R[te, j] - pred, te) - r0)
+                    raws.append(r0)
+                if not diffs:
                     continue
-                m = ridge_fit(s.X[tr], s.R[tr, j], lam)
-                pred = ridge_predict(m, s.X[te])
-                r0 = sim(s.R[te, j], te)
-                diffs.append(sim(s.R[te, j] - pred, te) - r0)
-                raws.append(r0)
-            if not diffs:
-                continue
-            d, r0 = np.concatenate(diffs), np.concatenate(raws)
-            if best is None or d.mean() > best[1].mean():
-                best = (lam, d, r0)
+                d, r0 = np.concatenate(diffs), np.concatenate(raws)
+                if best is None or d.mean() > best[1].mean():
+                    best = (lam, d, r0, train_ok, trim)
         if best is None:
             continue
-        lam, d, r0 = best
+        lam, d, r0, train_ok, trim = best
         corr.lam[j] = lam
+        corr.trim[j] = trim
         corr.heldout_raw[j] = float(r0.mean())
         corr.heldout_adapted[j] = float(r0.mean() + d.mean())
         # keep the correction only when the held-out gain is clearly above chance: a paired

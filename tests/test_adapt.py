@@ -94,3 +94,41 @@ def test_json_round_trip_and_apply():
     np.testing.assert_allclose(a, b)
     assert sa[9] == "adapted" and sa[0] == "model"           # uncorrected / absent joints stay as they are
     assert a[9, 0] - kps[9, 0] == pytest.approx(0.03 * 200, abs=2.0)   # the planted offset, in pixels
+
+
+def _one_view_offset(seed, groups, share=0.3, offset=0.25):
+    """Invented test data: in one camera view (a share of every participant's frames, told
+    apart by feature 0) the knee (joint 13) is proposed ``offset`` too high; elsewhere
+    the residual is small noise. Plus a few wild, unpredictable misses on the ankle (15)."""
+    s = _synthetic(seed=seed, groups=groups, offset=(0.0, 0.0), noise=0.004)
+    rng = np.random.default_rng(seed + 100)
+    view = rng.uniform(size=len(s.X)) < share
+    s.X[:, 0] = np.where(view, 0.35, -0.35) + rng.normal(0, 0.02, len(s.X))
+    s.R[view, 13, 1] += offset
+    wild = rng.uniform(size=len(s.X)) < 0.08
+    s.R[wild, 15] += rng.normal(0, 0.5, (wild.sum(), 2))
+    return s, view
+
+
+def test_a_large_systematic_offset_is_learnt_not_trimmed():
+    # The offset is over 3x the knee's median residual, so a fixed 3x-median trim would
+    # drop exactly the frames that carry it; cross-validation must choose not to trim.
+    train, _ = _one_view_offset(1, ("A", "B", "C", "D", "E"))
+    test, view = _one_view_offset(2, ("F", "G"))
+    corr = fit_correction(train, SIG)
+    assert corr.use[13] and corr.trim[13] == float("inf")
+    pred = corr.predict_residual(test.X, 17)
+    assert np.abs(test.R[view, 13, 1] - pred[view, 13, 1]).mean() < 0.03 < np.abs(test.R[view, 13, 1]).mean()
+    only_trimmed = fit_correction(train, SIG, trims=(3.0,))
+    assert not only_trimmed.use[13]       # the old fixed trim could not learn it
+    after, before = evaluate(corr, test, SIG), evaluate(None, test, SIG)
+    assert after["moves_adapted"] < before["moves_raw"]
+
+
+def test_wild_misses_do_not_become_a_correction():
+    # the ankle's wild misses are unpredictable: no correction is kept for it, trimmed or not
+    train, _ = _one_view_offset(3, ("A", "B", "C", "D", "E"))
+    corr = fit_correction(train, SIG)
+    assert not corr.use[15]
+    back = Correction.from_json(corr.to_json())
+    assert back.trim == corr.trim
