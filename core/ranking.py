@@ -16,10 +16,14 @@ Three ingredients, per candidate frame:
   ``dedup_window`` frames of a queued one are near-duplicates unless their
   pose differs by more than ``dedup_distance``.
 
-Batch selection is greedy with diminishing returns: after each pick the
-novelty of every candidate is updated against the picked pose (the k-center
-step) and candidates from the same video lose weight, so a batch of 50 is
-not 50 frames from one clip. Cost: O(frames x batch).
+Batch selection is greedy with diminishing returns, each ingredient its own:
+after each pick the novelty of every candidate is updated against the picked
+pose (the k-center step), and the uncertainty of candidates from the same
+video is discounted (``same_clip_decay``), so a batch of 50 is not 50 uncertain
+frames from one clip. Novelty is not discounted again by clip: a pose unlike
+anything picked is worth as much in a clip already visited. Score per
+candidate: ``uncertainty * u * clip_discount + novelty * nov``. Cost:
+O(frames x batch).
 """
 from __future__ import annotations
 
@@ -42,7 +46,7 @@ class RankWeights:
 
     uncertainty: float = 1.0
     novelty: float = 1.0
-    same_clip_decay: float = 0.35     # a clip's k-th pick weighs 1 / (1 + decay * k)
+    same_clip_decay: float = 0.35     # after a clip's k-th pick its uncertainty weighs 1 / (1 + decay * k)
     dedup_window: int = 15            # frames of one video this close are near-duplicates ...
     dedup_distance: float = 0.35      # ... unless their normalised poses differ by more than this
     embedding_weight: float = 0.0     # weight of the appearance embedding in pose space
@@ -288,7 +292,7 @@ class RankingQueue:
         for _ in range(min(batch, int(avail.sum()))):
             nov = np.sqrt(np.minimum(min_d, (cap * scale) ** 2)) / scale / cap   # in [0, 1]
             nov = np.where(np.isfinite(min_d), nov, 1.0)
-            score = (self.w.uncertainty * self.unc + self.w.novelty * nov) * decay   # exact ties: the lowest position wins
+            score = self.w.uncertainty * self.unc * decay + self.w.novelty * nov   # exact ties: the lowest position wins
             score = np.where(avail, score, -np.inf)
             i = int(np.argmax(score))
             if not np.isfinite(score[i]):

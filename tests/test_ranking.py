@@ -155,3 +155,21 @@ def test_project_weights_are_checked_field_by_field():
                      ('{"novelty": true}', "number")]:
         with pytest.raises(KinemarkError, match=msg):
             RankWeights.parse_user(bad)
+
+
+def test_clip_decay_discounts_uncertainty_not_novelty():
+    # Novelty has its own diminishing returns (the k-center update, Sener & Savarese 2018);
+    # the per-clip decay is for uncertainty, which has none. So with uncertainty weighted 0
+    # the decay changes nothing, and with novelty weighted 0 it does.
+    rng = np.random.default_rng(5)
+    n = 240
+    media = np.repeat(np.arange(4), n // 4)
+    index = np.tile(np.arange(n // 4) * 20, 4)
+    X = rng.normal(size=(n, 6))
+    X[media == 0] *= 3.0            # one clip holds most of the spread-out poses
+    u = rng.uniform(size=n)
+
+    def picks(**w):
+        return [p[0] for p in RankingQueue(X, u, media, index, RankWeights(**w)).select(40)]
+    assert picks(uncertainty=0.0, same_clip_decay=0.35) == picks(uncertainty=0.0, same_clip_decay=0.0)
+    assert picks(novelty=0.0, same_clip_decay=0.35) != picks(novelty=0.0, same_clip_decay=0.0)
