@@ -32,6 +32,9 @@ MIN_FRAMES = 8
 # training trims: residuals over 3x the joint's median, or none; cross-validation picks per joint
 TRIMS = (3.0, float("inf"))
 MIN_T = 2.0
+# a frame is corrected only within this many times the widest nearest-neighbour gap among
+# the labelled frames (in standardised feature space): a project choice, see Support
+SUPPORT_FACTOR = 1.5
 
 
 # ---- crop coordinates -----------------------------------------------------------------
@@ -110,6 +113,53 @@ def _sim(err2: np.ndarray, area: np.ndarray, sigmas: np.ndarray) -> np.ndarray:
 
 
 @dataclass
+class Support:
+    """Where a correction may be applied: near the frames it was fitted on.
+
+    A linear correction fitted on one kind of frame (say, only the model's
+    failures, or one camera view) extrapolates wildly to frames unlike any of
+    them, and cross-validation cannot notice, because every fold holds the same
+    kind of frame. So a frame is corrected only if, in the standardised feature
+    space, its nearest labelled frame is within ``radius``: ``SUPPORT_FACTOR``
+    times the largest distance from a labelled frame to its own nearest other
+    labelled frame (a project choice: the labelled set's widest gap, with room).
+    Outside, the raw proposal stands.
+    """
+
+    mu: np.ndarray
+    sd: np.ndarray
+    points: np.ndarray        # (N, F) the labelled frames' standardised features
+    radius: float
+
+    @classmethod
+    def of(cls, X: np.ndarray, factor: float = SUPPORT_FACTOR) -> "Support":
+        mu = X.mean(axis=0)
+        sd = X.std(axis=0)
+        sd[sd < 1e-12] = 1.0
+        Z = ((X - mu) / sd).astype(np.float32)
+        d = _nearest(Z, Z, exclude_self=True)
+        gap = float(np.max(d[np.isfinite(d)])) if np.isfinite(d).any() else 0.0
+        return cls(mu, sd, Z, factor * gap)
+
+    def covers(self, X: np.ndarray) -> np.ndarray:
+        Z = ((np.asarray(X, float) - self.mu) / self.sd).astype(np.float32)
+        return _nearest(Z, self.points) <= self.radius
+
+
+def _nearest(A: np.ndarray, B: np.ndarray, *, exclude_self: bool = False, chunk: int = 2048) -> np.ndarray:
+    """(len(A),) Euclidean distance from each row of A to its nearest row of B."""
+    bb = np.einsum("ij,ij->i", B, B)
+    out = np.empty(len(A))
+    for s in range(0, len(A), chunk):
+        a = A[s:s + chunk]
+        d2 = np.einsum("ij,ij->i", a, a)[:, None] + bb[None, :] - 2.0 * a @ B.T
+        if exclude_self:
+            d2[np.arange(len(a)), np.arange(s, s + len(a))] = np.inf
+        out[s:s + chunk] = np.sqrt(np.maximum(d2.min(axis=1), 0.0)) if d2.shape[1] else np.inf
+    return out
+
+
+@dataclass
 class Correction:
     """A fitted per-project correction (or the decision not to use one)."""
 
@@ -122,20 +172,32 @@ class Correction:
     heldout_adapted: dict = field(default_factory=dict)   # joint -> the same, corrected
     summary: dict = field(default_factory=dict)
     with_embedding: bool = False
+    support: "Support | None" = None
 
     @property
     def active(self) -> bool:
         return bool(np.any(self.use))
 
+    def covers(self, X: np.ndarray) -> np.ndarray:
+        """(N,) bool: frames close enough to the labelled ones to be corrected."""
+        X = np.atleast_2d(X)
+        return self.support.covers(X) if self.support is not None else np.ones(len(X), bool)
+
     def predict_residual(self, X: np.ndarray, K: int) -> np.ndarray:
+        """Predicted residuals; zero for frames outside the labelled frames' support."""
         out = np.zeros((len(X), K, 2))
+        inside = self.covers(X)
         for j, m in self.models.items():
             if self.use[j]:
-                out[:, j] = ridge_predict(m, X)
+                out[inside, j] = ridge_predict(m, X[inside])
         return out
 
     def to_json(self) -> str:
+        sup = self.support
         return json.dumps({
+            "support": None if sup is None else {"mu": sup.mu.tolist(), "sd": sup.sd.tolist(),
+                                                 "points": np.round(sup.points, 5).tolist(),
+                                                 "radius": sup.radius},
             "model_hash": self.model_hash, "use": self.use.astype(int).tolist(),
             "models": {str(j): [a.tolist() for a in m] for j, m in self.models.items()},
             "lam": {str(j): v for j, v in self.lam.items()},
@@ -153,7 +215,11 @@ class Correction:
                    trim={int(j): (float("inf") if v is None else v) for j, v in d.get("trim", {}).items()},
                    heldout_raw={int(j): v for j, v in d["heldout_raw"].items()},
                    heldout_adapted={int(j): v for j, v in d["heldout_adapted"].items()},
-                   summary=d.get("summary", {}), with_embedding=d.get("with_embedding", False))
+                   summary=d.get("summary", {}), with_embedding=d.get("with_embedding", False),
+                   support=None if not d.get("support") else Support(
+                       np.array(d["support"]["mu"]), np.array(d["support"]["sd"]),
+                       np.array(d["support"]["points"], dtype=np.float32).reshape(
+                           -1, len(d["support"]["mu"])), float(d["support"]["radius"])))
 
 
 def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
@@ -227,6 +293,8 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
         if d.mean() > 0 and t > MIN_T:
             corr.use[j] = True
             corr.models[j] = ridge_fit(s.X[train_ok], s.R[train_ok, j], lam)
+    if corr.active:
+        corr.support = Support.of(s.X)
     raw = list(corr.heldout_raw.values())
     corr.summary = {"frames": int(N), "participants": int(len(set(s.groups.tolist()))),
                     "joints_corrected": int(corr.use.sum()),
@@ -302,9 +370,11 @@ def apply_to(corr: Correction, kps, confidence, embedding, region: dict, sources
     pc = to_crop(np.asarray(kps)[:, :2], region)
     X = features(pc[None], np.asarray(confidence)[None],
                  None if (embedding is None or not corr.with_embedding) else np.asarray(embedding)[None])
-    delta = corr.predict_residual(X, K)[0]
     out = np.array(kps, float)
     src = list(sources)
+    if not corr.covers(X)[0]:      # unlike every labelled frame: the raw proposal stands
+        return out, src
+    delta = corr.predict_residual(X, K)[0]
     for j in range(K):
         if corr.use[j] and out[j, 2] > 0:
             out[j, :2] = from_crop(pc[j] + delta[j], region)
@@ -384,6 +454,9 @@ def reapply(project, corr: Correction, *, user_id: int | None = None) -> list[in
             continue
         kps, src = apply_to(corr, prop.keypoints, prop.confidence, prop.embedding, prop.region,
                             ["model"] * len(prop.keypoints))
+        same = np.where(kps[:, 2:3] > 0, kps, 0.0)     # as stored: unlabelled points at (0, 0, 0)
+        if tuple(src) == tuple(a.sources) and np.allclose(same, a.keypoints, rtol=0, atol=1e-9):
+            continue            # nothing to change (e.g. outside the correction's support)
         changed.append(store.save_annotation(a.frame_id, kps, src, state=PREFILLED, action="adapt",
                                              user_id=user_id).id)
     return changed

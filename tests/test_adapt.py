@@ -132,3 +132,22 @@ def test_wild_misses_do_not_become_a_correction():
     assert not corr.use[15]
     back = Correction.from_json(corr.to_json())
     assert back.trim == corr.trim
+
+
+def test_no_correction_for_frames_unlike_every_labelled_one():
+    # Labels come from one camera view only (feature 0 near +0.35, as a biased queue might
+    # give). Cross-validation over those labels cannot see how the fit extrapolates, so frames
+    # far from every labelled one keep the raw proposal; frames like them are corrected.
+    s, view = _one_view_offset(4, ("A", "B", "C", "D", "E"), share=0.5)
+    train = Samples(s.X[view], s.R[view], s.groups[view], s.area[view], s.vis[view])
+    corr = fit_correction(train, SIG)
+    assert corr.use[13]
+    other, other_view = _one_view_offset(5, ("F", "G"), share=0.5)
+    far = other.X[~other_view].copy()
+    far[:, 0] = -3.0                                   # well away from every labelled frame
+    near = other.X[other_view]
+    assert corr.covers(near).mean() > 0.9 and not corr.covers(far).any()
+    assert np.all(corr.predict_residual(far, 17) == 0.0)
+    assert np.abs(corr.predict_residual(near, 17)[:, 13, 1]).mean() > 0.1
+    back = Correction.from_json(corr.to_json())
+    np.testing.assert_array_equal(back.covers(near), corr.covers(near))
