@@ -365,11 +365,17 @@ class Corrector:
         return apply_to(self.corr, kps, res.confidence, res.embedding, rd, sources)
 
 
-def apply_to(corr: Correction, kps, confidence, embedding, region: dict, sources):
-    K = len(kps)
+def _frame_features(corr: Correction, kps, confidence, embedding, region: dict):
+    """(crop coordinates (K, 2), feature row (1, F)) of one proposal, as the correction sees it."""
     pc = to_crop(np.asarray(kps)[:, :2], region)
     X = features(pc[None], np.asarray(confidence)[None],
                  None if (embedding is None or not corr.with_embedding) else np.asarray(embedding)[None])
+    return pc, X
+
+
+def apply_to(corr: Correction, kps, confidence, embedding, region: dict, sources):
+    K = len(kps)
+    pc, X = _frame_features(corr, kps, confidence, embedding, region)
     out = np.array(kps, float)
     src = list(sources)
     if not corr.covers(X)[0]:      # unlike every labelled frame: the raw proposal stands
@@ -419,7 +425,7 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
     corr.with_embedding = use_emb
     who = project.user(user)
     project.store.set_meta("adaptation", corr.to_json(), user_id=who.id)
-    changed = reapply(project, corr, user_id=who.id) if corr.active else ()
+    changed, outside = reapply(project, corr, user_id=who.id) if corr.active else ((), 0)
     names = [project.skeleton.keypoints[j] for j in np.flatnonzero(corr.use)]
     if corr.active:
         msg = (f"adapted {len(names)} of {K} joints from {s.R.shape[0]} labelled frames "
@@ -427,6 +433,9 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
                f"participants {corr.summary['heldout_similarity_raw']:.3f} raw -> "
                f"{corr.summary['heldout_similarity_adapted']:.3f} adapted; re-proposed {len(changed)} "
                f"untouched frame(s)")
+        if outside:
+            msg += (f"; {outside} frame(s) unlike every labelled one keep the raw proposal "
+                    f"(label some of them to extend the correction)")
     else:
         msg = ("kept the raw model: " + corr.summary.get("reason", "no joint's correction beat the raw model "
                                                          "on held-out participants"))
@@ -442,10 +451,15 @@ def load_correction(project, model_hash: str) -> Correction | None:
     return corr if corr.model_hash == model_hash and corr.active else None
 
 
-def reapply(project, corr: Correction, *, user_id: int | None = None) -> list[int]:
-    """Re-pre-fill frames whose annotation is still the untouched model proposal."""
+def reapply(project, corr: Correction, *, user_id: int | None = None) -> tuple[list[int], int]:
+    """Re-pre-fill frames whose annotation is still the untouched model proposal.
+
+    Returns (changed annotation ids, how many of those frames lie outside the
+    correction's support and so keep the raw proposal).
+    """
     store = project.store
     changed = []
+    outside = 0
     for a in store.annotations([PREFILLED]):
         if not set(a.sources) <= {"model", "adapted"}:
             continue
@@ -454,9 +468,11 @@ def reapply(project, corr: Correction, *, user_id: int | None = None) -> list[in
             continue
         kps, src = apply_to(corr, prop.keypoints, prop.confidence, prop.embedding, prop.region,
                             ["model"] * len(prop.keypoints))
+        outside += not corr.covers(_frame_features(corr, prop.keypoints, prop.confidence,
+                                                   prop.embedding, prop.region)[1])[0]
         same = np.where(kps[:, 2:3] > 0, kps, 0.0)     # as stored: unlabelled points at (0, 0, 0)
         if tuple(src) == tuple(a.sources) and np.allclose(same, a.keypoints, rtol=0, atol=1e-9):
             continue            # nothing to change (e.g. outside the correction's support)
         changed.append(store.save_annotation(a.frame_id, kps, src, state=PREFILLED, action="adapt",
                                              user_id=user_id).id)
-    return changed
+    return changed, outside
