@@ -142,7 +142,7 @@ def bench_rank(sizes=(10_000, 30_000, 100_000), batch: int = 200, dim: int = 34)
               f"(linear would be {n1 / n0:.0f}x); goal: 100k x 200 in <= 2 s")
 
 
-def bench_propose(n_frames: int = 60, repeats: int = 3):
+def bench_propose(n_frames: int = 60, repeats: int = 5):
     """Raw model rate vs the full pre-fill pipeline on the same crops, and peak memory.
 
     Frames come from the invented scenario renderer (rendered once into a

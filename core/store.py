@@ -11,6 +11,7 @@ from version i to version i + 1. A database newer than this code is refused.
 from __future__ import annotations
 
 import json
+import math
 import os
 import re
 import sqlite3
@@ -204,7 +205,7 @@ def now_iso() -> str:
 
 def _kp_json(kps: np.ndarray) -> str:
     a = np.asarray(kps, dtype=float)
-    return json.dumps([[float(x), float(y), int(v)] for x, y, v in a])
+    return json.dumps([[x, y, int(v)] for x, y, v in a.tolist()])
 
 
 def _kp_load(text: str) -> np.ndarray:
@@ -212,8 +213,13 @@ def _kp_load(text: str) -> np.ndarray:
     return arr.reshape(-1, 3)
 
 
+def _arr_list(a) -> list:
+    """Floats for JSON; NaN and infinities (not valid JSON) become null."""
+    return [x if math.isfinite(x) else None for x in np.asarray(a, float).ravel().tolist()]
+
+
 def _arr_json(a) -> str:
-    return json.dumps([None if not np.isfinite(x) else float(x) for x in np.asarray(a, float)])
+    return json.dumps(_arr_list(a))
 
 
 def _arr_load(text: str) -> np.ndarray:
@@ -835,7 +841,7 @@ class Store:
                       signals: dict, score: float, region: dict | None = None, embedding=None,
                       adapted: bool = False, person: int = 0) -> int:
         emb = None if embedding is None else np.asarray(embedding, dtype=np.float32).tobytes()
-        sig = {k: json.loads(_arr_json(v)) for k, v in signals.items()}
+        sig = {k: _arr_list(v) for k, v in signals.items()}
         with self.tx() as db:
             return self._insert(
                 db, "INSERT INTO proposals(frame_id, person, model_id, model_hash, keypoints,"

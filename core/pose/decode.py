@@ -19,13 +19,16 @@ import numpy as np
 _LOG_EPS = 1e-10  # floor before taking the log (DARK step 2)
 
 
-def _as_heatmaps(heatmaps) -> np.ndarray:
-    hm = np.asarray(heatmaps)
+def _check_shape(hm: np.ndarray) -> np.ndarray:
     if hm.ndim != 3:
         raise ValueError(f"heatmaps must be shaped (K, H, W), got {hm.shape}")
     if hm.shape[1] < 1 or hm.shape[2] < 1:
         raise ValueError(f"heatmaps have an empty spatial size {hm.shape[1:]}")
-    return hm.astype(np.float64, copy=False)
+    return hm
+
+
+def _as_heatmaps(heatmaps) -> np.ndarray:
+    return _check_shape(np.asarray(heatmaps)).astype(np.float64, copy=False)
 
 
 def _finite(hm: np.ndarray) -> np.ndarray:
@@ -239,7 +242,9 @@ def multipeak_entropy(heatmaps: np.ndarray, *, threshold_ratio: float = 0.1,
         raise ValueError(f"window must be a positive odd integer, got {window}")
     if not 0 <= threshold_ratio < 1:
         raise ValueError(f"threshold_ratio must be in [0, 1), got {threshold_ratio}")
-    hm = _finite(_as_heatmaps(heatmaps)).astype(np.float32)
+    hm = _check_shape(np.asarray(heatmaps))
+    if hm.dtype != np.float32 or not np.isfinite(hm).all():
+        hm = _finite(_as_heatmaps(hm)).astype(np.float32)
     k = hm.shape[0]
     out = np.full(k, np.nan)
     if k == 0:
@@ -278,36 +283,35 @@ def multipeak_entropy(heatmaps: np.ndarray, *, threshold_ratio: float = 0.1,
     return out
 
 
-def _max_filter(a: np.ndarray, window: int) -> np.ndarray:
-    """(K, H, W) maximum over each cell's window x window neighbourhood inside the map.
+def _stacked(a: np.ndarray, gap: int, fill):
+    """The K channels one above the other in one 2-D image, ``gap`` rows of ``fill`` between
+    them, so one OpenCV call filters them all without one channel reaching into the next."""
+    k, h, w = a.shape
+    buf = np.full((k, h + gap, w), fill, dtype=a.dtype)
+    buf[:, :h] = a
+    return buf.reshape(k * (h + gap), w)
 
-    Separable (rows, then columns): a rectangle's maximum is the maximum of its
-    rows' maxima.
-    """
+
+def _unstacked(img: np.ndarray, shape) -> np.ndarray:
+    k, h, w = shape
+    return img.reshape(k, -1, w)[:, :h]
+
+
+def _max_filter(a: np.ndarray, window: int) -> np.ndarray:
+    """(K, H, W) float32: maximum over each cell's window x window neighbourhood inside its
+    own channel (cv2.dilate, whose default border ignores cells outside the image)."""
     half = window // 2
-    out = a.copy()
-    for axis in (1, 2):
-        src = out.copy()
-        n = a.shape[axis]
-        for d in range(1, half + 1):
-            if d >= n:
-                break
-            lo = [slice(None)] * 3
-            hi = [slice(None)] * 3
-            lo[axis], hi[axis] = slice(0, n - d), slice(d, n)
-            np.maximum(out[tuple(lo)], src[tuple(hi)], out=out[tuple(lo)])
-            np.maximum(out[tuple(hi)], src[tuple(lo)], out=out[tuple(hi)])
-    return out
+    if half == 0:
+        return a.copy()
+    img = _stacked(a, half, -np.inf)
+    return _unstacked(cv2.dilate(img, np.ones((window, window), np.uint8)), a.shape)
+
+
+_NEIGHBOURS = np.array([[1, 1, 1], [1, 0, 1], [1, 1, 1]], np.float32)
 
 
 def _has_marked_neighbour(mask: np.ndarray) -> np.ndarray:
     """(K, H, W) bool: the cell has a True cell among its 8 neighbours (not itself)."""
-    k, h, w = mask.shape
-    pad = np.zeros((k, h + 2, w + 2), bool)
-    pad[:, 1:-1, 1:-1] = mask
-    out = np.zeros_like(mask)
-    for dy in (-1, 0, 1):
-        for dx in (-1, 0, 1):
-            if dy or dx:
-                out |= pad[:, 1 + dy:1 + dy + h, 1 + dx:1 + dx + w]
-    return out
+    img = _stacked(mask.view(np.uint8), 1, 0)
+    count = cv2.filter2D(img, -1, _NEIGHBOURS, borderType=cv2.BORDER_CONSTANT)
+    return _unstacked(count, mask.shape) > 0

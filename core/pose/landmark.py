@@ -523,7 +523,8 @@ class LandmarkAdapter(PoseAdapter):
                    "pose_flag": np.zeros(0, np.float32),
                    "heatmaps": np.zeros((0, HEATMAP_SIZE, HEATMAP_SIZE, NUM_POINTS), np.float32)}
             return out
-        cat = [np.concatenate([p[j] for p in parts], axis=0) for j in range(len(names))]
+        cat = parts[0] if len(parts) == 1 else \
+            [np.concatenate([p[j] for p in parts], axis=0) for j in range(len(names))]
         out = {"landmarks": cat[0].reshape(len(x), NUM_POINTS, 5),
                "pose_flag": cat[1].reshape(len(x)),
                "heatmaps": cat[2]}
