@@ -83,6 +83,32 @@ def ridge_predict(model, X):
     return ((X - mu) / sd) @ W + b
 
 
+def ridge_path(X: np.ndarray, Y: np.ndarray, lambdas) -> list:
+    """:func:`ridge_fit` for several penalties from one eigendecomposition.
+
+    With Z standardised (so centred), the solution for penalty λ is
+    V (E + λ)^-1 Vᵀ Zᵀ (Y - ȳ) where Zᵀ Z = V E Vᵀ: one decomposition serves
+    every λ. With fewer frames than features the n x n matrix Z Zᵀ = U S Uᵀ is
+    decomposed instead: W = Zᵀ U (S + λ)^-1 Uᵀ (Y - ȳ), the same solution.
+    Returns one (mean, scale, W, b) per λ, in order.
+    """
+    mu = X.mean(axis=0)
+    sd = X.std(axis=0)
+    sd[sd < 1e-12] = 1.0
+    Z = (X - mu) / sd
+    ym = Y.mean(axis=0)
+    Yc = Y - ym
+    if len(Z) < Z.shape[1]:
+        s_, U = np.linalg.eigh(Z @ Z.T)
+        s_ = np.maximum(s_, 0.0)
+        P = U.T @ Yc
+        return [(mu, sd, Z.T @ (U @ (P / (s_ + lam)[:, None])), ym) for lam in lambdas]
+    e, V = np.linalg.eigh(Z.T @ Z)
+    e = np.maximum(e, 0.0)
+    P = V.T @ (Z.T @ Yc)
+    return [(mu, sd, V @ (P / (e + lam)[:, None]), ym) for lam in lambdas]
+
+
 @dataclass
 class Samples:
     """Training data in crop coordinates.
@@ -260,24 +286,27 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
             d2 = (res ** 2).sum(axis=1)
             return np.exp(-d2 / var[j] / (s.area[idx] + np.spacing(1)) / 2)
         best = None
+        tried = []
         for trim in trims:
             train_ok = ok & (rn <= max(trim * med, 1e-9))
-            if best is not None and np.array_equal(train_ok, best[3]):
+            if any(np.array_equal(train_ok, t) for t in tried):
                 continue        # this trim keeps the same frames as one already tried
-            for lam in lambdas:
-                diffs, raws = [], []
-                for test in folds:
-                    tr, te = train_ok & ~test, ok & test     # scored on every held-out frame
-                    if tr.sum() < 3 or te.sum() == 0:
-                        continue
-                    m = ridge_fit(s.X[tr], s.R[tr, j], lam)
-                    pred = ridge_predict(m, s.X[te])
-                    r0 = sim(s.R[te, j], te)
-                    diffs.append(sim(s.R[te, j] - pred, te) - r0)
-                    raws.append(r0)
-                if not diffs:
+            tried.append(train_ok)
+            diffs = [[] for _ in lambdas]
+            raws = []
+            for test in folds:
+                tr, te = train_ok & ~test, ok & test     # scored on every held-out frame
+                if tr.sum() < 3 or te.sum() == 0:
                     continue
-                d, r0 = np.concatenate(diffs), np.concatenate(raws)
+                r0 = sim(s.R[te, j], te)
+                raws.append(r0)
+                for i, m in enumerate(ridge_path(s.X[tr], s.R[tr, j], lambdas)):
+                    diffs[i].append(sim(s.R[te, j] - ridge_predict(m, s.X[te]), te) - r0)
+            if not raws:
+                continue
+            r0 = np.concatenate(raws)
+            for lam, dl in zip(lambdas, diffs):
+                d = np.concatenate(dl)
                 if best is None or d.mean() > best[1].mean():
                     best = (lam, d, r0, train_ok, trim)
         if best is None:

@@ -151,3 +151,15 @@ def test_no_correction_for_frames_unlike_every_labelled_one():
     assert np.abs(corr.predict_residual(near, 17)[:, 13, 1]).mean() > 0.1
     back = Correction.from_json(corr.to_json())
     np.testing.assert_array_equal(back.covers(near), corr.covers(near))
+
+
+@pytest.mark.parametrize("n", [30, 200])      # fewer frames than features, and more
+def test_ridge_path_equals_one_fit_per_penalty(n):
+    from kinemark.core.adapt import ridge_fit, ridge_path, ridge_predict
+    rng = np.random.default_rng(n)
+    X, Y = rng.normal(size=(n, 60)), rng.normal(size=(n, 2))
+    Xt = rng.normal(size=(10, 60))
+    lams = (0.3, 10.0, 1e4)
+    for lam, m in zip(lams, ridge_path(X, Y, lams)):
+        np.testing.assert_allclose(ridge_predict(m, Xt), ridge_predict(ridge_fit(X, Y, lam), Xt),
+                                   rtol=1e-7, atol=1e-9)
