@@ -162,7 +162,9 @@ class Support:
         mu = X.mean(axis=0)
         sd = X.std(axis=0)
         sd[sd < 1e-12] = 1.0
-        Z = ((X - mu) / sd).astype(np.float32)
+        # rounded as stored (to_json), so a correction covers the same frames before and
+        # after it is saved
+        Z = np.round((X - mu) / sd, 5).astype(np.float32)
         d = _nearest(Z, Z, exclude_self=True)
         gap = float(np.max(d[np.isfinite(d)])) if np.isfinite(d).any() else 0.0
         return cls(mu, sd, Z, factor * gap)
@@ -209,10 +211,14 @@ class Correction:
         X = np.atleast_2d(X)
         return self.support.covers(X) if self.support is not None else np.ones(len(X), bool)
 
-    def predict_residual(self, X: np.ndarray, K: int) -> np.ndarray:
-        """Predicted residuals; zero for frames outside the labelled frames' support."""
+    def predict_residual(self, X: np.ndarray, K: int, inside: np.ndarray | None = None) -> np.ndarray:
+        """Predicted residuals; zero for frames outside the labelled frames' support.
+
+        ``inside``: :meth:`covers` of ``X`` when the caller already has it.
+        """
         out = np.zeros((len(X), K, 2))
-        inside = self.covers(X)
+        if inside is None:
+            inside = self.covers(X)
         for j, m in self.models.items():
             if self.use[j]:
                 out[inside, j] = ridge_predict(m, X[inside])
@@ -403,18 +409,25 @@ def _frame_features(corr: Correction, kps, confidence, embedding, region: dict):
 
 
 def apply_to(corr: Correction, kps, confidence, embedding, region: dict, sources):
+    out, src, _ = _apply(corr, kps, confidence, embedding, region, sources)
+    return out, src
+
+
+def _apply(corr: Correction, kps, confidence, embedding, region: dict, sources):
+    """:func:`apply_to`, also saying whether the frame lies inside the correction's support."""
     K = len(kps)
     pc, X = _frame_features(corr, kps, confidence, embedding, region)
     out = np.array(kps, float)
     src = list(sources)
-    if not corr.covers(X)[0]:      # unlike every labelled frame: the raw proposal stands
-        return out, src
-    delta = corr.predict_residual(X, K)[0]
+    inside = corr.covers(X)
+    if not inside[0]:      # unlike every labelled frame: the raw proposal stands
+        return out, src, False
+    delta = corr.predict_residual(X, K, inside)[0]
     for j in range(K):
         if corr.use[j] and out[j, 2] > 0:
             out[j, :2] = from_crop(pc[j] + delta[j], region)
             src[j] = "adapted"
-    return out, src
+    return out, src, True
 
 
 def _pairs_from_project(project):
@@ -495,10 +508,9 @@ def reapply(project, corr: Correction, *, user_id: int | None = None) -> tuple[l
         prop = store.proposal(a.frame_id, model_hash=corr.model_hash)
         if prop is None or not prop.region:
             continue
-        kps, src = apply_to(corr, prop.keypoints, prop.confidence, prop.embedding, prop.region,
-                            ["model"] * len(prop.keypoints))
-        outside += not corr.covers(_frame_features(corr, prop.keypoints, prop.confidence,
-                                                   prop.embedding, prop.region)[1])[0]
+        kps, src, inside = _apply(corr, prop.keypoints, prop.confidence, prop.embedding, prop.region,
+                                  ["model"] * len(prop.keypoints))
+        outside += not inside
         same = np.where(kps[:, 2:3] > 0, kps, 0.0)     # as stored: unlabelled points at (0, 0, 0)
         if tuple(src) == tuple(a.sources) and np.allclose(same, a.keypoints, rtol=0, atol=1e-9):
             continue            # nothing to change (e.g. outside the correction's support)

@@ -231,8 +231,8 @@ def unmirror_landmarks(raw: np.ndarray, width: int = INPUT_SIZE) -> np.ndarray:
     return out[MODEL_FLIP_PERMUTATION[: len(out)]]
 
 
-def _sigmoid(z):
-    z = np.asarray(z, dtype=np.float64)
+def _sigmoid(z, dtype=np.float64):
+    z = np.asarray(z, dtype=dtype)
     return 1.0 / (1.0 + np.exp(-np.clip(z, -60.0, 60.0)))
 
 
@@ -650,8 +650,7 @@ class LandmarkAdapter(PoseAdapter):
         ent = np.full(k, np.nan)
         # only the channels the skeleton uses
         # (float32 is enough here: the entropy works in float32 anyway)
-        logits = np.clip(np.moveaxis(p["heatmaps"][..., idx], -1, 0).astype(np.float32), -60.0, 60.0)
-        ent[cov] = multipeak_entropy(1.0 / (1.0 + np.exp(-logits)))
+        ent[cov] = multipeak_entropy(_sigmoid(np.moveaxis(p["heatmaps"][..., idx], -1, 0), np.float32))
         signals["heatmap_entropy"] = ent
         pass_d = np.full(k, np.nan)
         if earlier is not None:
