@@ -106,6 +106,36 @@ def _from_workers(threads, out_q):
         yield item
 
 
+def split_runs(frames, workers: int, min_run: int = 8) -> list[list]:
+    """Share frames (sorted by media, then frame index) among ``workers``.
+
+    Each share is made of whole runs of consecutive frames from one video, so a
+    worker decodes in order and the neighbouring-pose crop carries on within
+    its runs. When there are fewer videos than workers, the longest run is cut
+    in half (never into runs shorter than ``min_run``), so a single long video
+    still keeps every worker busy; each cut costs one whole-frame first pass.
+    Runs go to the least loaded share, longest first.
+    """
+    runs: list[list] = []
+    for f in frames:
+        if runs and runs[-1][-1].media_id == f.media_id:
+            runs[-1].append(f)
+        else:
+            runs.append([f])
+    workers = max(1, int(workers))
+    while len(runs) < workers:
+        longest = max(range(len(runs)), key=lambda i: len(runs[i]), default=None)
+        if longest is None or len(runs[longest]) < 2 * min_run:
+            break
+        run = runs.pop(longest)
+        half = len(run) // 2
+        runs[longest:longest] = [run[:half], run[half:]]
+    shards: list[list] = [[] for _ in range(min(workers, max(1, len(runs))))]
+    for run in sorted(runs, key=len, reverse=True):
+        min(shards, key=len).extend(run)
+    return shards
+
+
 def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None, make_adapter=None,
             workers: int = 1, progress=None, cancel: threading.Event | None = None,
             max_gap: int = 2, corrector=None) -> tuple[Changes, PrefillReport]:
@@ -124,10 +154,10 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
     t0 = time.perf_counter()
     workers = max(1, int(workers))
     if adapter is None and make_adapter is None:
-        threads = max(1, 2 // workers)
-        adapter = load_adapter(project, threads=threads)   # fail early, clearly, if the model is bad
+        ort_threads = max(1, 2 // workers)
+        adapter = load_adapter(project, threads=ort_threads)   # fail early, clearly, if the model is bad
         if workers > 1:
-            make_adapter = lambda: load_adapter(project, threads=threads)  # noqa: E731
+            make_adapter = lambda: load_adapter(project, threads=ort_threads)  # noqa: E731
     if adapter is None:
         adapter = make_adapter()
     report = PrefillReport(adapter.model_id, adapter.model_hash)
@@ -145,14 +175,7 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
     report.already_done = len(cand) - len(todo)
     todo.sort(key=lambda f: (f.media_id, f.frame_index))
 
-    # split by media so each worker decodes its videos in order
-    groups: dict[int, list] = {}
-    for f in todo:
-        groups.setdefault(f.media_id, []).append(f)
-    n_shards = min(workers, max(1, len(groups))) if make_adapter is not None else 1
-    shards = [[] for _ in range(n_shards)]
-    for i, mid in enumerate(sorted(groups, key=lambda m: -len(groups[m]))):
-        min(shards, key=len).extend(groups[mid])
+    shards = split_runs(todo, workers if make_adapter is not None else 1)
     cancel = cancel or threading.Event()
     threads = []
     if len(shards) == 1:

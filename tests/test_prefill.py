@@ -1,0 +1,199 @@
+"""Batch pre-fill: resumable, one bad frame never stops a batch, a person's points
+are never written over, and parallel workers propose exactly what one worker does.
+
+Most checks use a stand-in model whose keypoints are a function of the decoded
+pixels (so a frame that was not really read gives the wrong answer); one check
+runs the bundled model with two workers, the path `kinemark propose --workers 2`
+takes.
+"""
+from __future__ import annotations
+
+import threading
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from kinemark.core import ops
+from kinemark.core.errors import KinemarkError
+from kinemark.core.media import Sampling
+from kinemark.core.model import DRAFTING, PREFILLED
+from kinemark.core.pose.base import PoseResult
+from kinemark.core.prefill import prefill, split_runs
+from kinemark.core.project import Project
+from kinemark.core.skeleton import COCO17
+
+from conftest import write_video
+
+BUNDLED = Path(__file__).resolve().parents[1] / "assets" / "models" / "pose_landmark_full.onnx"
+
+
+class PixelModel:
+    """Keypoints derived from the frame's pixels; optionally fails on chosen frames."""
+
+    model_id = "pixel-test"
+    model_hash = "0" * 64
+
+    def __init__(self, fail_on_mean=None):
+        self.fail_on_mean = fail_on_mean or set()
+        self.calls = []
+
+    def predict(self, img, region=None, previous=None):
+        m = float(img.mean())
+        self.calls.append((round(m, 3), previous is not None))
+        if round(m, 3) in self.fail_on_mean:
+            raise KinemarkError("planted failure")
+        k = np.arange(17, dtype=float)
+        kps = np.stack([10 + k + m / 10, 20 + k, np.full(17, 2.0)], axis=1)
+        sig = {"flip_disagreement": np.full(17, 0.01)}
+        return PoseResult(kps, np.full(17, 0.9), sig, None, 0.9, None)
+
+
+@pytest.fixture
+def two_videos(tmp_path):
+    p = Project.create(tmp_path / "proj", COCO17, owner="ra1")
+    vids = [write_video(tmp_path / f"v{i}.mp4", n_frames=30, seed=i) for i in range(2)]
+    ops.add_media(p, vids, sampling=Sampling(every=3))
+    yield p
+    p.close()
+
+
+def _means(p):
+    return {f.id: float(p.read_frame(f.media_id, f.frame_index).mean()) for f in p.store.frames()}
+
+
+def test_every_frame_is_proposed_from_its_own_pixels_and_a_rerun_skips_them(two_videos):
+    p = two_videos
+    frames = p.store.frames()
+    assert len(frames) == 20
+    _, rep = prefill(p, adapter=PixelModel())
+    assert rep.proposed == 20 and not rep.failed and rep.already_done == 0
+    means = _means(p)
+    for f in frames:
+        a = p.store.annotation(f.id)
+        assert a.state == PREFILLED and set(a.sources) == {"model"}
+        assert a.keypoints[0, 0] == pytest.approx(10 + means[f.id] / 10, abs=1e-6)
+        assert p.store.proposal(f.id).model_hash == PixelModel.model_hash
+    again = PixelModel()
+    _, rep2 = prefill(p, adapter=again)
+    assert rep2.proposed == 0 and rep2.already_done == 20 and again.calls == []
+
+
+def test_one_bad_frame_is_counted_and_the_rest_are_proposed(two_videos):
+    p = two_videos
+    means = _means(p)
+    bad_id = sorted(means)[7]
+    _, rep = prefill(p, adapter=PixelModel(fail_on_mean={round(means[bad_id], 3)}))
+    assert rep.proposed == 19
+    assert [fid for fid, _ in rep.failed] == [bad_id]
+    assert "planted failure" in rep.failed[0][1] and "1 failed" in rep.summary()
+    assert p.store.annotation(bad_id) is None
+    # resumable: the next run only proposes the frame that failed
+    model = PixelModel()
+    _, rep2 = prefill(p, adapter=model)
+    assert rep2.proposed == 1 and rep2.already_done == 19 and len(model.calls) == 1
+
+
+def test_a_persons_points_are_never_written_over(two_videos):
+    p = two_videos
+    f0, f1 = p.store.frames()[:2]
+    human = np.zeros((17, 3))
+    human[:, :2] = 50.0
+    human[:, 2] = 2
+    p.store.save_annotation(f0.id, human, ["human"] * 17, state=DRAFTING)
+    # a pre-filled frame where a person moved one point is a person's work too
+    _, _ = prefill(p, adapter=PixelModel(), frame_ids=[f1.id])
+    a1 = p.store.annotation(f1.id)
+    moved = a1.keypoints.copy()
+    moved[3, :2] += 5
+    p.store.save_annotation(f1.id, moved, ["model"] * 3 + ["human"] + ["model"] * 13, state=PREFILLED)
+    _, rep = prefill(p, adapter=PixelModel(), frames="all")
+    assert rep.human_kept == 1      # f0; f1 was already proposed by this model hash
+    assert np.array_equal(p.store.annotation(f0.id).keypoints, human)
+    assert np.array_equal(p.store.annotation(f1.id).keypoints, moved)
+    assert p.store.proposal(f0.id) is not None     # the proposal is stored beside the person's points
+    # 'unlabelled' leaves both frames out entirely
+    from kinemark.core.prefill import candidate_frames
+    ids = {f.id for f in candidate_frames(p, "unlabelled")}
+    assert f0.id not in ids and f1.id not in ids
+
+
+def test_cancel_keeps_the_finished_part_and_a_rerun_finishes(two_videos):
+    p = two_videos
+    cancel = threading.Event()
+
+    def progress(done, total, _msg):
+        if done == 5:
+            cancel.set()
+    _, rep = prefill(p, adapter=PixelModel(), progress=progress, cancel=cancel)
+    assert rep.cancelled and rep.proposed == 5
+    _, rep2 = prefill(p, adapter=PixelModel())
+    assert rep2.proposed == 15 and rep2.already_done == 5
+
+
+def test_neighbouring_frames_seed_the_next_crop_only_within_one_video(tmp_path):
+    p = Project.create(tmp_path / "proj", COCO17, owner="ra1")
+    vids = [write_video(tmp_path / f"v{i}.mp4", n_frames=6, seed=i) for i in range(2)]
+    ops.add_media(p, vids, sampling=Sampling(every=1))
+    model = PixelModel()
+    prefill(p, adapter=model, max_gap=2)
+    # the first frame of each video starts from the whole frame; the rest get a hint
+    assert [hint for _, hint in model.calls] == [False] + [True] * 5 + [False] + [True] * 5
+    p.close()
+
+
+class _F:
+    def __init__(self, media_id, frame_index):
+        self.media_id, self.frame_index = media_id, frame_index
+
+
+def test_split_runs_keeps_videos_in_order_and_cuts_a_lone_long_video():
+    frames = [_F(1, i) for i in range(40)]
+    shards = split_runs(frames, 2)
+    assert len(shards) == 2 and [len(s) for s in shards] == [20, 20]
+    assert [f.frame_index for f in shards[0]] == list(range(20))
+    assert [f.frame_index for f in shards[1]] == list(range(20, 40))
+    # too short to be worth a second whole-frame pass: one worker
+    assert len(split_runs([_F(1, i) for i in range(10)], 2)) == 1
+    # several videos: whole videos, balanced, each in frame order
+    mixed = [_F(m, i) for m, n in ((1, 30), (2, 12), (3, 14)) for i in range(n)]
+    shards = split_runs(mixed, 2)
+    assert sorted(len(s) for s in shards) == [26, 30]
+    for s in shards:
+        for a, b in zip(s, s[1:]):
+            assert a.media_id != b.media_id or b.frame_index == a.frame_index + 1
+    assert sorted((f.media_id, f.frame_index) for s in shards for f in s) == \
+        sorted((f.media_id, f.frame_index) for f in mixed)
+    assert split_runs([], 2) == [[]]
+
+
+def test_two_workers_propose_what_one_worker_proposes(two_videos, tmp_path):
+    p = two_videos
+    made = []
+
+    def make():
+        m = PixelModel()
+        made.append(m)
+        return m
+    _, rep = prefill(p, make_adapter=make, workers=2)
+    assert rep.proposed == 20 and not rep.failed and len(made) == 2
+    assert all(m.calls for m in made)           # both workers did some of the work
+    means = _means(p)
+    for f in p.store.frames():
+        assert p.store.annotation(f.id).keypoints[0, 0] == pytest.approx(10 + means[f.id] / 10, abs=1e-6)
+
+
+@pytest.mark.skipif(not BUNDLED.is_file(), reason="bundled model not present")
+def test_two_workers_with_the_bundled_model(tmp_path):
+    """The default-model path of ``kinemark propose --workers 2`` (each worker loads its own session)."""
+    results = {}
+    for workers in (1, 2):
+        p = Project.create(tmp_path / f"w{workers}", COCO17, owner="ra1")
+        vids = [write_video(tmp_path / f"w{workers}v{i}.mp4", n_frames=12, seed=i) for i in range(2)]
+        ops.add_media(p, vids, sampling=Sampling(every=4))   # gaps > max_gap: every frame starts afresh
+        _, rep = ops.propose(p, workers=workers)
+        assert rep.proposed == 6 and not rep.failed, rep.summary()
+        results[workers] = [p.store.proposal(f.id).keypoints for f in p.store.frames()]
+        p.close()
+    for a, b in zip(results[1], results[2]):
+        assert np.allclose(a, b, atol=0.05)   # one or two ONNX Runtime threads: same sums up to rounding
