@@ -151,64 +151,101 @@ def bench_propose(n_frames: int = 60, repeats: int = 5):
     and its mirror as one batch of two); the pipeline figure is everything:
     decode, crop, both passes with flip, decoding, signals and storing.
 
-    The two are measured alternately, ``repeats`` times each (a fresh project
-    for every pipeline run, so nothing is skipped as already proposed), and
-    each pair's ratio is printed with the median: this machine is shared and a
-    single pair can be off by 20 %.
+    Two layouts of the machine's 2 cores are measured, each against inference
+    alone in the same layout: one worker whose ONNX Runtime session has 2
+    threads, and 2 workers (``--workers 2``) whose sessions have 1 thread each
+    and run side by side (their raw figure replays each worker's crops on its
+    own session, both at once). Sessions are loaded before timing in both.
+
+    Each layout's pipeline and raw runs alternate, ``repeats`` times (a fresh
+    project for every pipeline run, so nothing is skipped as already proposed);
+    each pair's ratio is printed with the medians: this machine is shared and a
+    single pair can be off by 20 %. The last line sets the faster pipeline
+    against the faster inference-only layout.
     """
+    import threading
+
     from . import ops
     from .media import Sampling
     from .pose import load_adapter
+    from .prefill import prefill
     from .project import Project
     from .skeleton import COCO17
     from .synth import render_scenario
     tmp = Path(tempfile.mkdtemp(prefix="kinemark-bench-"))
+    layouts = {"1 worker x 2 threads": (1, 2), "2 workers x 1 thread": (2, 1)}
     try:
         clips = render_scenario(tmp / "clips", seed=11, size="tiny")
-        adapter = None
-        real_raw = None
-        ratios, pipes, raws = [], [], []
+        adapters: dict[str, list] = {}
+        figures = {name: {"pipe": [], "raw": [], "ratio": []} for name in layouts}
         rss0 = None
         for rep in range(max(1, repeats)):
-            p = Project.create(tmp / f"p{rep}", COCO17, owner="bench")
-            ops.add_media(p, [c.mp4_path for c in clips], sampling=Sampling(every=1))
-            fids = [f.id for f in p.store.frames()][:n_frames]
-            if adapter is None:
-                adapter = load_adapter(p, threads=2)
-                real_raw = adapter.predict_raw
-            # warm up both ONNX Runtime and the decoder first: the first runs allocate
-            first = p.store.frame(fids[0])
-            for _ in range(3):
-                adapter.predict(p.read_frame(first.media_id, first.frame_index))
-            # record every batch of crops the pipeline hands to the model, to replay them alone
-            recorded = []
+            for name, (workers, threads) in layouts.items():
+                p = Project.create(tmp / f"p{rep}-{workers}", COCO17, owner="bench")
+                ops.add_media(p, [c.mp4_path for c in clips], sampling=Sampling(every=1))
+                fids = [f.id for f in p.store.frames()][:n_frames]
+                if name not in adapters:
+                    adapters[name] = [load_adapter(p, threads=threads) for _ in range(workers)]
+                    # warm up ONNX Runtime and the decoder: the first runs allocate
+                    first = p.store.frame(fids[0])
+                    for a in adapters[name]:
+                        for _ in range(3):
+                            a.predict(p.read_frame(first.media_id, first.frame_index))
+                pool = adapters[name]
+                # record every batch of crops each worker hands to its model, to replay them alone
+                recorded = [[] for _ in pool]
+                real = [a.predict_raw for a in pool]
+                for a, rec, raw in zip(pool, recorded, real):
+                    def recording_raw(crops, rec=rec, raw=raw):
+                        rec.append(np.array(crops, copy=True))
+                        return raw(crops)
+                    a.predict_raw = recording_raw
+                handed = iter(pool)
+                if rss0 is None:
+                    rss0 = _rss_mb()
+                t0 = time.perf_counter()
+                if workers == 1:
+                    _, rep_ = ops.propose(p, frame_ids=fids, adapter=pool[0])
+                else:
+                    _, rep_ = prefill(p, frame_ids=fids, make_adapter=lambda: next(handed), workers=workers)
+                t_pipe = time.perf_counter() - t0
+                for a, raw in zip(pool, real):
+                    a.predict_raw = raw
 
-            def recording_raw(crops):
-                recorded.append(np.array(crops, copy=True))
-                return real_raw(crops)
-            adapter.predict_raw = recording_raw
-            if rss0 is None:
-                rss0 = _rss_mb()
-            t0 = time.perf_counter()
-            _, rep_ = ops.propose(p, frame_ids=fids, adapter=adapter)
-            t_pipe = time.perf_counter() - t0
-            adapter.predict_raw = real_raw
-            t0 = time.perf_counter()
-            for batch in recorded:
-                real_raw(batch)
-            t_raw = time.perf_counter() - t0
-            n_crops = sum(len(b) for b in recorded)
-            n = rep_.proposed
-            p.close()
-            pipes.append(n / t_pipe)
-            raws.append(n / t_raw)
-            ratios.append(t_raw / t_pipe)
-            print(f"propose run {rep + 1}: {n} frames; full pipeline {t_pipe:.2f} s ({n / t_pipe:.1f} frames/s); "
-                  f"inference only on the same {n_crops} crops ({len(recorded)} model calls) {t_raw:.2f} s "
-                  f"({n / t_raw:.1f} frames/s); ratio {t_raw / t_pipe:.2f}")
-        print(f"propose: median over {len(ratios)} alternating runs: pipeline {np.median(pipes):.1f} frames/s, "
-              f"inference only {np.median(raws):.1f} frames/s; pipeline/raw rate ratio "
-              f"{np.median(ratios):.2f} (range {min(ratios):.2f}-{max(ratios):.2f}; goal >= 0.8); "
-              f"peak RSS {_rss_mb():.0f} MB (before the first run {rss0:.0f} MB; goal <= 1024 MB)")
+                def replay(raw, batches):
+                    for b in batches:
+                        raw(b)
+                t0 = time.perf_counter()
+                if workers == 1:
+                    replay(real[0], recorded[0])
+                else:
+                    ts = [threading.Thread(target=replay, args=(raw, rec)) for raw, rec in zip(real, recorded)]
+                    for t in ts:
+                        t.start()
+                    for t in ts:
+                        t.join()
+                t_raw = time.perf_counter() - t0
+                n_crops = sum(len(b) for rec in recorded for b in rec)
+                n_calls = sum(len(rec) for rec in recorded)
+                n = rep_.proposed
+                p.close()
+                f = figures[name]
+                f["pipe"].append(n / t_pipe)
+                f["raw"].append(n / t_raw)
+                f["ratio"].append(t_raw / t_pipe)
+                print(f"propose run {rep + 1}, {name}: {n} frames ({len(rep_.failed)} failed); full pipeline "
+                      f"{t_pipe:.2f} s ({n / t_pipe:.1f} frames/s); inference only on the same {n_crops} crops "
+                      f"({n_calls} model calls) {t_raw:.2f} s ({n / t_raw:.1f} frames/s); ratio {t_raw / t_pipe:.2f}")
+        med = {name: {k: float(np.median(v)) for k, v in f.items()} for name, f in figures.items()}
+        for name, f in figures.items():
+            print(f"propose, {name}: median over {len(f['ratio'])} alternating runs: pipeline "
+                  f"{med[name]['pipe']:.1f} frames/s, inference only {med[name]['raw']:.1f} frames/s; "
+                  f"ratio {med[name]['ratio']:.2f} (range {min(f['ratio']):.2f}-{max(f['ratio']):.2f})")
+        best_pipe = max(med, key=lambda k: med[k]["pipe"])
+        best_raw = max(med, key=lambda k: med[k]["raw"])
+        print(f"propose: fastest pipeline ({best_pipe}) {med[best_pipe]['pipe']:.1f} frames/s against fastest "
+              f"inference only ({best_raw}) {med[best_raw]['raw']:.1f} frames/s: pipeline/raw rate ratio "
+              f"{med[best_pipe]['pipe'] / med[best_raw]['raw']:.2f} (goal >= 0.8); peak RSS {_rss_mb():.0f} MB "
+              f"(before the first run {rss0:.0f} MB; goal <= 1024 MB)")
     finally:
         shutil.rmtree(tmp, ignore_errors=True)

@@ -42,7 +42,7 @@ import numpy as np
 from ..errors import KinemarkError
 from ..jsonfile import read_json
 from ..skeleton import Skeleton, derive_flip_pairs
-from .base import PoseAdapter, PoseResult, Region, file_sha256
+from .base import PoseAdapter, PoseResult, Region, file_sha256, session_options
 from .crop import apply_affine, crop_to_frame_matrix, extract_crop, whole_frame_region
 from .decode import dark_decode, multipeak_entropy
 
@@ -240,11 +240,7 @@ class HeatmapAdapter(PoseAdapter):
 
         cfg = self.config
         where = str(self.model_path)
-        opts = ort.SessionOptions()
-        opts.log_severity_level = 3
-        if threads:
-            opts.intra_op_num_threads = int(threads)
-            opts.inter_op_num_threads = 1
+        opts = session_options(threads)
         try:
             sess = ort.InferenceSession(str(self.model_path), sess_options=opts,
                                         providers=["CPUExecutionProvider"])

@@ -54,7 +54,7 @@ import numpy as np
 
 from ..errors import KinemarkError
 from ..skeleton import Skeleton, derive_flip_pairs
-from .base import PoseAdapter, PoseResult, Region
+from .base import PoseAdapter, PoseResult, Region, session_options
 from .crop import apply_affine, crop_to_frame_matrix, extract_crop, whole_frame_region
 from .decode import multipeak_entropy
 
@@ -427,10 +427,7 @@ class LandmarkAdapter(PoseAdapter):
     def _make_session(self, data: bytes, want_embedding: bool):
         import onnxruntime as ort
 
-        so = ort.SessionOptions()
-        so.intra_op_num_threads = self._threads
-        so.inter_op_num_threads = 1
-        so.log_severity_level = 3
+        so = session_options(self._threads)
 
         def session(blob):
             return ort.InferenceSession(blob, sess_options=so, providers=["CPUExecutionProvider"])
