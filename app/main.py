@@ -20,7 +20,7 @@ from pathlib import Path
 
 from PySide6.QtCore import QSettings, Qt, QTimer, Signal
 from PySide6.QtGui import QAction, QUndoStack
-from PySide6.QtWidgets import (QApplication, QFileDialog, QHBoxLayout, QLabel, QMainWindow, QMessageBox,
+from PySide6.QtWidgets import (QApplication, QFileDialog, QHBoxLayout, QInputDialog, QLabel, QMainWindow, QMessageBox,
                                QProgressBar, QPushButton, QSizePolicy, QSplitter, QStackedWidget, QTabWidget,
                                QVBoxLayout, QWidget)
 
@@ -37,7 +37,7 @@ from .forms import ExportDialog, NotesDialog, WhoDialog
 from .frames import FrameWorker, prepare
 from .panels.overview import OverviewPage
 from .panels.points import KeypointPanel
-from .panels.queue import DEFAULT_TARGET, QueuePanel, load_live_queue, load_queue
+from .panels.queue import QueuePanel, load_live_queue, load_queue
 
 QUEUE_BATCH = 50
 from .panels.signoff import SignoffList, SignoffPanel, flag_text
@@ -346,6 +346,7 @@ class MainWindow(QMainWindow):
             "batch.prefill": lambda: self.prefill_unlabelled(),
             "batch.learn": self.learn_from_accepted,
             "batch.export": self.ask_export,
+            "project.target": self.ask_target,
             "help.keys": self.show_keys,
         }
         self.actions: dict[str, QAction] = {}
@@ -781,13 +782,9 @@ class MainWindow(QMainWindow):
     def _update_progress(self):
         if self.project is None:
             return
-        s = self.project.store
-        counts = s.state_counts()
-        try:
-            target = int(s.get_meta("target_frames", str(DEFAULT_TARGET)))
-        except ValueError:
-            target = DEFAULT_TARGET
-        self.queue.set_progress(counts.get(ACCEPTED, 0), counts.get(IN_REVIEW, 0), target)
+        from ..core import ops
+        counts = self.project.store.state_counts()
+        self.queue.set_progress(counts.get(ACCEPTED, 0), counts.get(IN_REVIEW, 0), ops.target(self.project))
 
     # ---- editing ---------------------------------------------------------------------------------
 
@@ -1108,6 +1105,32 @@ class MainWindow(QMainWindow):
             self.refresh_queue()
 
         self.background.run("Learning from accepted labels", work, root=self.project.root, on_done=done)
+
+    def ask_target(self):
+        """Ask for the study's target number of accepted frames and store it (core.ops.set_target)."""
+        if self.project is None:
+            return
+        from ..core import ops
+        n, ok = QInputDialog.getInt(
+            self, "Study target", "Accepted frames the study needs (from its protocol):",
+            ops.target(self.project), 1, ops.MAX_TARGET, 10)
+        if ok:
+            self.set_target(n)
+
+    def set_target(self, n: int):
+        from ..core import ops
+        user = self.user_name
+
+        def work(project, progress, cancel):
+            return ops.set_target(project, n, user=user)
+
+        def done(ch):
+            self.after_change(ch)
+            self._update_progress()
+            self.statusBar().showMessage(ch.message, 5000)
+
+        self.background.run("Setting the study's target", work, root=self.project.root, on_done=done,
+                            cancellable=False)
 
     def inform(self, title: str, text: str):
         """A result the person asked for, in a box that does not stop the window."""

@@ -71,6 +71,8 @@ COMMANDS: tuple[Command, ...] = (
     Command("batch.export", "Export accepted labels…", ("Ctrl+E",),
             "write accepted labels as COCO keypoints, optionally split by participant and de-identified",
             "Project"),
+    Command("project.target", "Study target…", ("Ctrl+Shift+T",),
+            "how many accepted frames the study needs (a reviewer or admin sets it)", "Project"),
     Command("help.keys", "Key sheet", ("?", "F1"), "this sheet: every command and its keys", "Help"),
 )
 BY_ID = {c.id: c for c in COMMANDS}

@@ -86,12 +86,9 @@ def cmd_info(a):
     from . import ops
     with _open(a.dir) as p:
         if a.set_target is not None:
-            if a.set_target < 1:
-                raise KinemarkError("the target must be at least one frame")
-            p.store.set_meta("target_frames", str(a.set_target), user_id=p.user(a.user).id)
-            print(f"target: {a.set_target} accepted frames")
+            print(ops.set_target(p, a.set_target, user=a.user).message)
         d = ops.info(p)
-        d["target"] = p.store.get_meta("target_frames")
+        d["target"] = p.store.get_meta(ops.TARGET_KEY)
     print(f"project   {d['root']}")
     print(f"skeleton  {d['skeleton']} ({d['keypoints']} keypoints), schema v{d['schema_version']}")
     print(f"media     {d['media']}   frames {d['frames']}")

@@ -168,6 +168,45 @@ def relink(project: Project, media_id: int, new_path: str | Path | None = None, 
                    message=f"relinked media {media_id}; {changed} of {len(frames)} frames' pixels changed")
 
 
+# ---- the study's target ----------------------------------------------------------------
+
+TARGET_KEY = "target_frames"
+DEFAULT_TARGET = 200
+MAX_TARGET = 1_000_000
+
+
+def target(project: Project) -> int:
+    """The study's target number of accepted frames (``DEFAULT_TARGET`` until one is set)."""
+    try:
+        n = int(project.store.get_meta(TARGET_KEY, str(DEFAULT_TARGET)))
+    except ValueError:
+        return DEFAULT_TARGET
+    return n if n >= 1 else DEFAULT_TARGET
+
+
+def set_target(project: Project, frames, *, user: str | None = None) -> Changes:
+    """Set how many accepted frames the study needs (the progress shown to everyone).
+
+    Only a reviewer or an admin may: the target comes from the study's protocol.
+    The change is kept in the audit trail with its old value.
+    """
+    from .review import REVIEWER_ROLES
+    try:
+        n = int(frames)
+    except (TypeError, ValueError):
+        raise KinemarkError(f"the target must be a whole number of frames, not {frames!r}") from None
+    if isinstance(frames, float) and frames != n:
+        raise KinemarkError(f"the target must be a whole number of frames, not {frames!r}")
+    if not 1 <= n <= MAX_TARGET:
+        raise KinemarkError(f"the target must be between 1 and {MAX_TARGET:,} frames, not {n}")
+    who = project.user(user)
+    if who.role not in REVIEWER_ROLES:
+        raise KinemarkError(f"{who.name} is an {who.role}; only a reviewer or admin sets the study's target")
+    before = target(project)
+    project.store.set_meta(TARGET_KEY, str(n), user_id=who.id)
+    return Changes(message=f"target: {n} accepted frames (was {before})", details={"target": n})
+
+
 # ---- summary ------------------------------------------------------------------------
 
 def info(project: Project) -> dict:

@@ -381,3 +381,19 @@ def test_labelling_seconds_over_plain_events():
     assert review.labelling_seconds(evs) == pytest.approx(9.0)
     assert review.labelling_seconds(evs[:3]) == pytest.approx(15.0)
     assert review.labelling_seconds(evs[:2]) is None
+
+
+def test_the_study_target_is_set_by_a_reviewer_and_audited(project, team):
+    from kinemark.core import ops
+    assert ops.target(project) == ops.DEFAULT_TARGET
+    with pytest.raises(KinemarkError, match="only a reviewer or admin"):
+        ops.set_target(project, 300, user="ann")
+    ch = ops.set_target(project, 300, user="rev")
+    assert ops.target(project) == 300 and "was 200" in ch.message
+    ev = [e for e in project.store.events(entity="meta") if "target_frames" in json.loads(e.after)][-1]
+    assert json.loads(ev.before) == {"target_frames": None} and json.loads(ev.after) == {"target_frames": "300"}
+    assert ev.user_id == project.store.user("rev").id
+    for bad in (0, -5, 2.5, "many", ops.MAX_TARGET + 1):
+        with pytest.raises(KinemarkError, match="target must be"):
+            ops.set_target(project, bad, user="rev")
+    assert ops.target(project) == 300

@@ -11,7 +11,6 @@ from PySide6.QtWidgets import QLabel, QListWidgetItem, QProgressBar, QWidget
 from ...core.model import ACCEPTED, IN_REVIEW
 from .common import DONE, entry_list, fill_entries, list_panel_head, select_entry, thumbnail_icon
 
-DEFAULT_TARGET = 200
 
 
 @dataclass(frozen=True)

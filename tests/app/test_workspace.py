@@ -529,3 +529,26 @@ def test_clip_strip_scrubs_while_dragging(window, qtbot):
     window.go(first)
     send(QEvent.MouseButtonPress, w - 5, Qt.LeftButton)               # same spot again: still goes
     assert window.frame_id == last
+
+
+def test_study_target_is_set_from_the_project_menu(window, qtbot, monkeypatch):
+    from PySide6.QtWidgets import QInputDialog
+    from kinemark.core import ops
+    asked = []
+
+    def get_int(parent, title, label, value, lo, hi, step):
+        asked.append(value)
+        return 150, True
+    monkeypatch.setattr(QInputDialog, "getInt", staticmethod(get_int))
+    window.actions["project.target"].trigger()       # the window's user is the project's admin
+    qtbot.waitUntil(lambda: not window.background.busy)
+    assert asked == [ops.DEFAULT_TARGET]
+    assert ops.target(window.project) == 150
+    assert "of 150 frames accepted" in window.queue.progress_text.text()
+    # an annotator is told why not, and the target stays
+    window.project.store.add_user("ann", "annotator")
+    assert window.switch_user("ann")
+    window.actions["project.target"].trigger()
+    qtbot.waitUntil(lambda: not window.background.busy)
+    assert "only a reviewer or admin" in window.background.boxes[-1].text()
+    assert ops.target(window.project) == 150
