@@ -1435,7 +1435,7 @@ class MainWindow(QMainWindow):
                             on_done=done)
 
     def refresh_overview(self):
-        from . import figures
+        from ..core import overview as figures
         queued = [e.frame_id for e in self.queue.entries]
 
         def work(project, progress, cancel):

@@ -56,9 +56,9 @@ def oks(gt: np.ndarray, dt: np.ndarray, area: float, sigmas, gt_bbox=None) -> fl
     return float(np.sum(np.exp(-e)) / e.shape[0])
 
 
-def joints_needing_move(truth: np.ndarray, proposal: np.ndarray | None, area: float, sigmas,
-                        threshold: float = 0.5) -> int:
-    """How many joints a person must move to turn ``proposal`` into ``truth``.
+def needs_move(truth: np.ndarray, proposal: np.ndarray | None, area: float, sigmas,
+               threshold: float = 0.5) -> np.ndarray:
+    """(K,) bool: the joints a person must move to turn ``proposal`` into ``truth``.
 
     A joint needs a move when the truth labels it (v > 0) and either the
     proposal has no point there (v = 0, or no proposal at all) or their
@@ -68,11 +68,17 @@ def joints_needing_move(truth: np.ndarray, proposal: np.ndarray | None, area: fl
     t = np.asarray(truth, float).reshape(-1, 3)
     need = t[:, 2] > 0
     if proposal is None:
-        return int(need.sum())
+        return need
     p = np.asarray(proposal, float).reshape(-1, 3)
     sim = keypoint_similarity(t, p, area, sigmas)
     missing = p[:, 2] <= 0
-    return int(np.sum(need & (missing | (sim < threshold))))
+    return need & (missing | (sim < threshold))
+
+
+def joints_needing_move(truth: np.ndarray, proposal: np.ndarray | None, area: float, sigmas,
+                        threshold: float = 0.5) -> int:
+    """How many joints need a move (:func:`needs_move`)."""
+    return int(needs_move(truth, proposal, area, sigmas, threshold).sum())
 
 
 def bbox_from_keypoints(kps: np.ndarray, margin: float = 0.1, image_size=None):

@@ -376,7 +376,8 @@ def import_coco(project: Project, file: str | Path, images_root: str | Path, *, 
             a = store.save_annotation(fid, arr, ["imported"] * K, state=state, person=person, bbox=bbox,
                                       user_id=who.id, action="import")
             ann_ids.append(a.id)
-    msg = f"imported {len(ann_ids)} annotations on {len(frame_for_image)} images"
+    msg = (f"imported {len(ann_ids)} annotation{'s' * (len(ann_ids) != 1)} on {len(frame_for_image)} "
+           f"image{'s' * (len(frame_for_image) != 1)}")
     if plan.problems:
         msg += f"; skipped {len(plan.problems)} bad record(s)"
     if plan.notices:

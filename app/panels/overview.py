@@ -14,7 +14,7 @@ from PySide6.QtGui import QColor, QFont, QPainter, QPen
 from PySide6.QtWidgets import QHBoxLayout, QLabel, QSizePolicy, QVBoxLayout, QWidget
 
 from .. import theme
-from ..figures import Coverage, KeypointFigures
+from ...core.overview import Coverage, KeypointFigures
 
 GROUPS = (("pool", "proposed, not labelled", theme.FAINT),
           ("queued", "queued in Up next", theme.ORANGE),
@@ -102,7 +102,7 @@ class PoseMap(_Figure):
         p.setFont(_small(self))
         p.setPen(QColor(theme.MUTED))
         d = self.data
-        sub = "each dot one frame's pose, centred on the hips and scaled by the torso"
+        sub = "one dot per frame: its pose centred, scaled and turned upright, as Up next compares poses"
         p.drawText(QRectF(14, 28, self.width() - 28, 18), Qt.AlignLeft, sub)
         plot = QRectF(24, 58, self.width() - 48, self.height() - 58 - 48)
         p.setPen(QPen(QColor(theme.LINE), 1))

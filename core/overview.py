@@ -1,6 +1,6 @@
-"""Numbers behind the Overview pictures. Plain numpy over what the store returns; no Qt.
-
-(These could move to core/ if another front end wants them.)
+"""Numbers behind the Overview pictures: where the labelled poses sit among all poses, and
+how far the model's proposals were from accepted labels, per keypoint. Plain numpy over
+what the store returns; the app draws them.
 """
 from __future__ import annotations
 
@@ -8,37 +8,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..core.metrics import bbox_from_keypoints, keypoint_similarity
-from ..core.model import ACCEPTED, DRAFTING, IN_REVIEW, PREFILLED, RETURNED
+from .metrics import bbox_from_keypoints, needs_move
+from .model import ACCEPTED, DRAFTING, IN_REVIEW, PREFILLED, RETURNED
 
 LABELLED = (DRAFTING, IN_REVIEW, ACCEPTED, RETURNED)
-
-
-def normalise(kps: np.ndarray, names) -> np.ndarray:
-    """(N, K, 3) poses -> (N, K, 2): centred on the mid-hip, divided by the torso length
-    (mid-hip to mid-shoulder). NaN where a point is missing (v = 0). Poses without a
-    torso fall back to their mean point and the spread of their points."""
-    kps = np.asarray(kps, float)
-    xy = kps[..., :2].copy()
-    xy[kps[..., 2] <= 0] = np.nan
-    names = list(names)
-
-    def mid(a, b):
-        if a in names and b in names:
-            with np.errstate(invalid="ignore"):
-                return np.nanmean(xy[:, [names.index(a), names.index(b)]], axis=1)
-        return np.full((len(xy), 2), np.nan)
-
-    import warnings
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        hip, sh = mid("left_hip", "right_hip"), mid("left_shoulder", "right_shoulder")
-        torso = np.hypot(*(sh - hip).T)
-        centre = np.where(np.isfinite(hip), hip, np.nanmean(xy, axis=1))
-        spread = np.sqrt(np.nanvar(xy[..., 0], axis=1) + np.nanvar(xy[..., 1], axis=1))
-        scale = np.where(np.isfinite(torso) & (torso > 1e-6), torso, spread)
-        scale = np.where(np.isfinite(scale) & (scale > 1e-6), scale, np.nan)
-        return (xy - centre[:, None, :]) / scale[:, None, None]
 
 
 def pca_2d(features: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -78,8 +51,10 @@ class Coverage:
 
 def coverage(project, queued_ids=()) -> Coverage:
     """Labelled poses (a person's annotations), the pool (proposals on frames nobody labelled
-    yet) and the queued part of the pool, in one 2-D projection of normalised poses."""
-    store, names = project.store, project.skeleton.keypoints
+    yet) and the queued part of the pool, in one 2-D projection of the pose space the
+    ranking measures novelty in (:func:`core.ranking.normalise_poses`)."""
+    from .ranking import normalise_poses
+    store = project.store
     labelled = {a.frame_id: a.keypoints for a in store.annotations(LABELLED)}
     props = {}
     for p in store.proposals():
@@ -93,7 +68,7 @@ def coverage(project, queued_ids=()) -> Coverage:
     if not fids:
         return Coverage(without_pose=store.frame_count())
     kps = np.stack([labelled[f] if f in labelled else props[f] for f in fids])
-    norm = normalise(kps, names)
+    norm = normalise_poses(kps, project.skeleton)
     ok = np.isfinite(norm).any(axis=(1, 2))
     feats = norm.reshape(len(norm), -1)[ok]
     xy, share = pca_2d(feats)
@@ -115,8 +90,8 @@ class KeypointFigures:
 def keypoint_figures(project) -> KeypointFigures:
     """Per keypoint: how far the model's proposal was from the accepted label, and how many
     labelled points each state holds. "Needed a move" is Kinemark's working definition
-    (core.metrics.joints_needing_move): per-keypoint OKS similarity below 0.5, computed
-    as pycocotools does, with the accepted label's box area as the object area."""
+    (core.metrics.needs_move): no proposed point, or a per-keypoint OKS similarity below
+    0.5, computed as pycocotools does, with the accepted label's box area as the object area."""
     store, skel = project.store, project.skeleton
     K = skel.num_keypoints
     props = {}
@@ -136,17 +111,12 @@ def keypoint_figures(project) -> KeypointFigures:
         box = a.bbox or bbox_from_keypoints(gt)
         if box is None:
             continue
-        area = float(box[2] * box[3])
-        sim = keypoint_similarity(gt, dt, area, skel.sigma_array)
-        for k in range(K):
-            if gt[k, 2] <= 0:
-                continue
+        move = needs_move(gt, dt, float(box[2] * box[3]), skel.sigma_array)
+        for k in np.flatnonzero(gt[:, 2] > 0):
             compared[k] += 1
-            if dt[k, 2] <= 0:
-                moves[k] += 1
-                continue
-            dists[k].append(float(np.hypot(*(dt[k, :2] - gt[k, :2]))))
-            moves[k] += sim[k] < 0.5
+            moves[k] += move[k]
+            if dt[k, 2] > 0:
+                dists[k].append(float(np.hypot(*(dt[k, :2] - gt[k, :2]))))
     with np.errstate(invalid="ignore", divide="ignore"):
         share = np.where(compared > 0, moves / compared, np.nan)
     med = np.array([np.median(d) if d else np.nan for d in dists])
