@@ -264,3 +264,65 @@ def test_entropy_matches_opencv_channel_by_channel(window):
     np.testing.assert_array_equal(np.isnan(got), np.isnan(want))
     ok = ~np.isnan(want)
     np.testing.assert_allclose(got[ok], want[ok], rtol=1e-9, atol=1e-12)
+
+
+def _dark_whole_map(hm, kernel=11):
+    """DARK as the paper describes it, step by step on whole maps (one channel at a time):
+    blur, rescale to the original maximum, floor and log, then one Newton step at the
+    argmax. The reference for the faster dark_decode, which only evaluates the cells the
+    Newton step reads."""
+    import cv2
+    from kinemark.core.pose.decode import opencv_kernel_sigma
+    hm = np.asarray(hm, np.float64)
+    sig = opencv_kernel_sigma(kernel)
+    out = []
+    for ch in hm:
+        h, w = ch.shape
+        y, x = np.unravel_index(np.argmax(ch), ch.shape)
+        if ch.max() <= 0 or ch.max() - ch.min() <= 1e-12 * max(1.0, abs(ch.max())):
+            out.append((x, y)); continue
+        b = cv2.GaussianBlur(ch, (kernel, kernel), sig, sigmaY=sig, borderType=cv2.BORDER_CONSTANT)
+        b = b * (ch.max() / b.max()) if b.max() > 0 else b * 0
+        lg = np.log(np.maximum(b, 1e-10))
+        at = lambda yy, xx: lg[min(max(yy, 0), h - 1), min(max(xx, 0), w - 1)]  # noqa: E731
+        dx, dy = 0.5 * (at(y, x + 1) - at(y, x - 1)), 0.5 * (at(y + 1, x) - at(y - 1, x))
+        dxx = at(y, x + 1) - 2 * at(y, x) + at(y, x - 1)
+        dyy = at(y + 1, x) - 2 * at(y, x) + at(y - 1, x)
+        dxy = 0.25 * (at(y + 1, x + 1) - at(y - 1, x + 1) - at(y + 1, x - 1) + at(y - 1, x - 1))
+        ix, iy = 0 < x < w - 1, 0 < y < h - 1
+        off = np.zeros(2)
+        if ix and iy and dxx < 0 and dxx * dyy - dxy * dxy > 0:
+            det = dxx * dyy - dxy * dxy
+            off = np.array([-(dyy * dx - dxy * dy) / det, -(-dxy * dx + dxx * dy) / det])
+        elif ix and not iy and dxx < 0:
+            off[0] = -dx / dxx
+        elif iy and not ix and dyy < 0:
+            off[1] = -dy / dyy
+        if not (np.isfinite(off).all() and (np.abs(off) <= 1).all()):
+            off = np.zeros(2)
+        out.append((x + off[0], y + off[1]))
+    return np.array(out, float)
+
+
+def test_dark_matches_the_whole_map_computation():
+    rng = np.random.default_rng(11)
+    yy, xx = np.mgrid[0:64, 0:48]
+    maps = [rng.random((64, 48)), rng.random((64, 48)).astype(np.float32)]
+    for cx, cy in [(10.3, 20.7), (0.4, 30.2), (47.0, 63.0), (23.5, 0.0), (5.2, 5.9)]:
+        g = np.exp(-((xx - cx) ** 2 + (yy - cy) ** 2) / (2 * 2.0 ** 2))
+        maps.append(g)
+        maps.append(g * 0.3 + 0.05 * rng.random(g.shape))
+    sparse = np.zeros((64, 48))
+    sparse[30, 20], sparse[31, 21] = 1.0, 1e-14
+    maps.append(sparse)
+    faint = np.zeros((64, 48))
+    faint[12, 9], faint[13, 9] = 1e-11, 4e-12           # blurred values under the log's floor
+    maps.append(faint)
+    maps.append(np.zeros((64, 48)))                   # flat: argmax, flagged
+    hm = np.stack(maps)
+    got = dark_decode(hm).coords
+    ref = _dark_whole_map(hm)
+    assert np.allclose(got, ref, atol=1e-9)
+    # float32 input decodes like its exact float64 copy
+    assert np.allclose(dark_decode(hm.astype(np.float32)).coords,
+                       dark_decode(hm.astype(np.float32).astype(np.float64)).coords, atol=1e-9)

@@ -56,11 +56,14 @@ def argmax_decode(heatmaps: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     maxvals (K,) float64, the heatmap value at that cell (NaN-safe, see the
     module docstring).
     """
-    hm = _finite(_as_heatmaps(heatmaps))
+    return _argmax(_finite(_as_heatmaps(heatmaps)))
+
+
+def _argmax(hm: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     k, h, w = hm.shape
     flat = hm.reshape(k, h * w)
     idx = np.argmax(flat, axis=1)
-    maxvals = flat[np.arange(k), idx]
+    maxvals = flat[np.arange(k), idx].astype(np.float64)
     coords = np.stack([idx % w, idx // w], axis=1).astype(np.int64)
     return coords, maxvals
 
@@ -76,9 +79,12 @@ def quarter_offset_decode(heatmaps: np.ndarray) -> tuple[np.ndarray, np.ndarray]
 
     Returns ``(coords, maxvals)`` with coords (K, 2) float64 (x, y).
     """
-    hm = _finite(_as_heatmaps(heatmaps))
+    hm = _check_shape(np.asarray(heatmaps))
+    if hm.dtype not in (np.float32, np.float64):
+        hm = hm.astype(np.float64)
+    hm = _finite(hm)
     k, h, w = hm.shape
-    ci, maxvals = argmax_decode(hm)
+    ci, maxvals = _argmax(hm)
     coords = ci.astype(np.float64)
     ks = np.arange(k)
     x, y = ci[:, 0], ci[:, 1]
@@ -148,9 +154,12 @@ def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
     flat, all zero or has no positive value returns its argmax with
     ``no_peak`` set, which callers should treat as no confidence.
     """
-    hm = _finite(_as_heatmaps(heatmaps))
+    hm = _check_shape(np.asarray(heatmaps))
+    if hm.dtype not in (np.float32, np.float64):
+        hm = hm.astype(np.float64)
+    hm = _finite(hm)
     k, h, w = hm.shape
-    ci, maxvals = argmax_decode(hm)
+    ci, maxvals = _argmax(hm)
     coords = ci.astype(np.float64)
     refined = np.zeros(k, dtype=bool)
     mins = hm.reshape(k, -1).min(axis=1)
@@ -170,31 +179,32 @@ def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
         sig = float(sigma)
         ksize = kernel_for_sigma(sig)
 
-    # Step 1: modulation (channel by channel: multi-channel limits differ across OpenCV builds).
+    # Steps 1-3 need the modulated log-heatmap only at the 3 x 3 cells around each argmax.
+    # The modulation's rescaling adds the same log(scale) to all of them, which the finite
+    # differences cancel, so those 9 blurred values are computed directly (the same kernel
+    # as cv2.GaussianBlur, zero border). Only a channel where one of them falls under the
+    # log's floor needs the whole blurred map and its maximum (scale >= 1, so the floor on
+    # the rescaled map is then reached exactly as on the whole-map computation).
     sub = hm[todo]
-    blurred = np.empty_like(sub)
-    for j in range(sub.shape[0]):
-        blurred[j] = cv2.GaussianBlur(sub[j], (ksize, ksize), sig, sigmaY=sig,
-                                      borderType=cv2.BORDER_CONSTANT)
-    bmax = blurred.reshape(blurred.shape[0], -1).max(axis=1)
-    scale = np.where(bmax > 0, maxvals[todo] / np.where(bmax > 0, bmax, 1.0), 0.0)
-    blurred *= scale[:, None, None]
-    # Step 2: log.
-    lg = np.log(np.maximum(blurred, _LOG_EPS))
-
-    # Step 3: Newton step at the argmax of the original heatmap.
     x, y = ci[todo, 0], ci[todo, 1]
-    n = np.arange(todo.size)
+    b9 = _blur_around(sub, x, y, sig, ksize)
+    low = (b9 < _LOG_EPS).any(axis=(1, 2))
+    if low.any():
+        full = _unstacked(cv2.GaussianBlur(_stacked(sub[low].astype(np.float64), ksize // 2 + 1, 0.0), (ksize, ksize), sig,
+                                           sigmaY=sig, borderType=cv2.BORDER_CONSTANT), sub[low].shape)
+        bmax = full.reshape(full.shape[0], -1).max(axis=1)
+        scale = np.where(bmax > 0, maxvals[todo][low] / np.where(bmax > 0, bmax, 1.0), 0.0)
+        b9[low] = _gather_3x3(full, x[low], y[low]) * scale[:, None, None]
+    lg = np.log(np.maximum(b9, _LOG_EPS))     # lg[:, 1 + dy, 1 + dx]
     inx = (x > 0) & (x < w - 1)
     iny = (y > 0) & (y < h - 1)
-    xl, xr = np.clip(x - 1, 0, w - 1), np.clip(x + 1, 0, w - 1)
-    yu, yd = np.clip(y - 1, 0, h - 1), np.clip(y + 1, 0, h - 1)
-    c0 = lg[n, y, x]
-    dx = 0.5 * (lg[n, y, xr] - lg[n, y, xl])
-    dy = 0.5 * (lg[n, yd, x] - lg[n, yu, x])
-    dxx = lg[n, y, xr] - 2 * c0 + lg[n, y, xl]
-    dyy = lg[n, yd, x] - 2 * c0 + lg[n, yu, x]
-    dxy = 0.25 * (lg[n, yd, xr] - lg[n, yu, xr] - lg[n, yd, xl] + lg[n, yu, xl])
+    c0 = lg[:, 1, 1]
+    l_r, l_l, l_d, l_u = lg[:, 1, 2], lg[:, 1, 0], lg[:, 2, 1], lg[:, 0, 1]
+    dx = 0.5 * (l_r - l_l)
+    dy = 0.5 * (l_d - l_u)
+    dxx = l_r - 2 * c0 + l_l
+    dyy = l_d - 2 * c0 + l_u
+    dxy = 0.25 * (lg[:, 2, 2] - lg[:, 0, 2] - lg[:, 2, 0] + lg[:, 0, 0])
 
     off = np.zeros((todo.size, 2))
     ok = np.zeros(todo.size, dtype=bool)
@@ -219,6 +229,31 @@ def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
     coords[todo] += off
     refined[todo] = ok
     return DarkResult(coords, maxvals, refined, no_peak)
+
+
+def _blur_around(hm: np.ndarray, x: np.ndarray, y: np.ndarray, sigma: float, ksize: int) -> np.ndarray:
+    """(K, 3, 3): each channel Gaussian-blurred (``ksize``, ``sigma``; zero outside the map, as
+    cv2.GaussianBlur with BORDER_CONSTANT) at the 3 x 3 cells around (x, y); cells outside
+    the map included."""
+    k, h, w = hm.shape
+    half = ksize // 2
+    g = cv2.getGaussianKernel(ksize, sigma, cv2.CV_64F).ravel()   # GaussianBlur's own kernel
+    offs = np.arange(-1 - half, 2 + half)
+    rows, cols = y[:, None] + offs, x[:, None] + offs            # (K, 3 + 2h) each
+    inside = (((rows >= 0) & (rows < h))[:, :, None]) & (((cols >= 0) & (cols < w))[:, None, :])
+    patch = hm[np.arange(k)[:, None, None], np.clip(rows, 0, h - 1)[:, :, None],
+               np.clip(cols, 0, w - 1)[:, None, :]]
+    patch = np.where(inside, patch, 0.0)                                  # (K, 3 + 2h, 3 + 2h)
+    along_x = np.lib.stride_tricks.sliding_window_view(patch, ksize, axis=2) @ g   # (K, 3 + 2h, 3)
+    return np.lib.stride_tricks.sliding_window_view(along_x, ksize, axis=1) @ g    # (K, 3, 3)
+
+
+def _gather_3x3(maps: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """(K, 3, 3) values of ``maps`` around (x, y), positions outside the map clipped to it."""
+    k, h, w = maps.shape
+    rows = np.clip(y[:, None] + np.arange(-1, 2), 0, h - 1)[:, :, None]
+    cols = np.clip(x[:, None] + np.arange(-1, 2), 0, w - 1)[:, None, :]
+    return maps[np.arange(k)[:, None, None], rows, cols]
 
 
 def multipeak_entropy(heatmaps: np.ndarray, *, threshold_ratio: float = 0.1,
