@@ -123,7 +123,7 @@ def kernel_for_sigma(sigma: float) -> int:
 
 
 def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
-                sigma: float | None = None) -> DarkResult:
+                sigma: float | None = None, transform=None) -> DarkResult:
     """Sub-pixel keypoints by distribution-aware refinement (DARK).
 
     Method: Zhang, Zhu, Dai, Ye, Zhu, CVPR 2020, "Distribution-Aware
@@ -153,6 +153,12 @@ def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
     longer than one cell or not finite, the argmax is kept. A channel that is
     flat, all zero or has no positive value returns its argmax with
     ``no_peak`` set, which callers should treat as no confidence.
+
+    ``transform``: an elementwise, strictly increasing function (say a
+    sigmoid, for a model that outputs logits) that makes the heatmap. The
+    result is that of decoding ``transform(heatmaps)``, but only the values
+    the decoding reads are transformed (the argmax is the same either way);
+    ``maxvals`` are then transformed values.
     """
     hm = _check_shape(np.asarray(heatmaps))
     if hm.dtype not in (np.float32, np.float64):
@@ -162,7 +168,10 @@ def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
     ci, maxvals = _argmax(hm)
     coords = ci.astype(np.float64)
     refined = np.zeros(k, dtype=bool)
-    mins = hm.reshape(k, -1).min(axis=1)
+    mins = hm.reshape(k, -1).min(axis=1).astype(np.float64)
+    tf = transform if transform is not None else (lambda a: a)
+    if transform is not None:
+        maxvals, mins = np.asarray(tf(maxvals), np.float64), np.asarray(tf(mins), np.float64)
     no_peak = (maxvals <= 0) | (maxvals - mins <= 1e-12 * np.maximum(1.0, np.abs(maxvals)))
     todo = np.flatnonzero(~no_peak)
     if todo.size == 0:
@@ -185,13 +194,13 @@ def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
     # as cv2.GaussianBlur, zero border). Only a channel where one of them falls under the
     # log's floor needs the whole blurred map and its maximum (scale >= 1, so the floor on
     # the rescaled map is then reached exactly as on the whole-map computation).
-    sub = hm[todo]
     x, y = ci[todo, 0], ci[todo, 1]
-    b9 = _blur_around(sub, x, y, sig, ksize)
+    b9 = _blur_around(hm, x, y, sig, ksize, tf, channels=todo)
     low = (b9 < _LOG_EPS).any(axis=(1, 2))
     if low.any():
-        full = _unstacked(cv2.GaussianBlur(_stacked(sub[low].astype(np.float64), ksize // 2 + 1, 0.0), (ksize, ksize), sig,
-                                           sigmaY=sig, borderType=cv2.BORDER_CONSTANT), sub[low].shape)
+        whole = np.asarray(tf(hm[todo[low]].astype(np.float64)), np.float64)
+        full = _unstacked(cv2.GaussianBlur(_stacked(whole, ksize // 2 + 1, 0.0), (ksize, ksize), sig,
+                                           sigmaY=sig, borderType=cv2.BORDER_CONSTANT), whole.shape)
         bmax = full.reshape(full.shape[0], -1).max(axis=1)
         scale = np.where(bmax > 0, maxvals[todo][low] / np.where(bmax > 0, bmax, 1.0), 0.0)
         b9[low] = _gather_3x3(full, x[low], y[low]) * scale[:, None, None]
@@ -231,18 +240,23 @@ def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
     return DarkResult(coords, maxvals, refined, no_peak)
 
 
-def _blur_around(hm: np.ndarray, x: np.ndarray, y: np.ndarray, sigma: float, ksize: int) -> np.ndarray:
-    """(K, 3, 3): each channel Gaussian-blurred (``ksize``, ``sigma``; zero outside the map, as
-    cv2.GaussianBlur with BORDER_CONSTANT) at the 3 x 3 cells around (x, y); cells outside
-    the map included."""
-    k, h, w = hm.shape
+def _blur_around(hm: np.ndarray, x: np.ndarray, y: np.ndarray, sigma: float, ksize: int,
+                 transform=None, channels=None) -> np.ndarray:
+    """(C, 3, 3): channels ``channels`` of ``hm`` (default all; ``transform``-ed, if given)
+    Gaussian-blurred (``ksize``, ``sigma``; zero outside the map, as cv2.GaussianBlur with
+    BORDER_CONSTANT) at the 3 x 3 cells around (x, y); cells outside the map included."""
+    _, h, w = hm.shape
+    chans = np.arange(hm.shape[0]) if channels is None else np.asarray(channels)
     half = ksize // 2
     g = cv2.getGaussianKernel(ksize, sigma, cv2.CV_64F).ravel()   # GaussianBlur's own kernel
     offs = np.arange(-1 - half, 2 + half)
     rows, cols = y[:, None] + offs, x[:, None] + offs            # (K, 3 + 2h) each
     inside = (((rows >= 0) & (rows < h))[:, :, None]) & (((cols >= 0) & (cols < w))[:, None, :])
-    patch = hm[np.arange(k)[:, None, None], np.clip(rows, 0, h - 1)[:, :, None],
+    patch = hm[chans[:, None, None], np.clip(rows, 0, h - 1)[:, :, None],
                np.clip(cols, 0, w - 1)[:, None, :]]
+    patch = patch.astype(np.float64)
+    if transform is not None:
+        patch = np.asarray(transform(patch), np.float64)
     patch = np.where(inside, patch, 0.0)                                  # (K, 3 + 2h, 3 + 2h)
     along_x = np.lib.stride_tricks.sliding_window_view(patch, ksize, axis=2) @ g   # (K, 3 + 2h, 3)
     return np.lib.stride_tricks.sliding_window_view(along_x, ksize, axis=1) @ g    # (K, 3, 3)

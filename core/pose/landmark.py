@@ -703,9 +703,10 @@ def _dark_points(lm: np.ndarray, heatmaps: np.ndarray, channels: np.ndarray) -> 
     hms = np.asarray(heatmaps)
     b, hh, ww = hms.shape[:3]
     stride = INPUT_SIZE / ww
-    # (B * C, 64, 64): every crop's chosen channels in one call
-    maps = _sigmoid(np.moveaxis(hms[..., channels], -1, 1).reshape(b * len(channels), hh, ww), np.float32)
-    res = dark_decode(maps)
+    # (B * C, 64, 64): every crop's chosen channels in one call; the sigmoid only on the
+    # cells the decoding reads
+    maps = hms.transpose(0, 3, 1, 2)[:, channels].reshape(b * len(channels), hh, ww)
+    res = dark_decode(maps, transform=_sigmoid)
     xy = ((res.coords + 0.5) * stride).reshape(b, len(channels), 2)
     keep = ~res.no_peak.reshape(b, len(channels))
     sel = out[:, channels, :2]
