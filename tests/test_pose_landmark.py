@@ -634,3 +634,31 @@ def test_dark_points_put_body_points_at_the_heatmap_peaks():
 def test_heatmap_decode_choices(tmp_path):
     with pytest.raises(ValueError, match="heatmap_decode"):
         LandmarkAdapter(COCO17, BUNDLED, heatmap_decode="argmax")
+
+
+def test_pass_disagreement_uses_the_regressed_points_and_only_the_final_pass_is_decoded(tmp_path, monkeypatch):
+    lm = np.zeros((39, 5))
+    lm[:, :2] = np.random.default_rng(2).uniform(60, 200, (39, 2))
+    lm[lmk.AUX_HIP_CENTRE, :2] = (128, 150)
+    lm[lmk.AUX_SCALE_POINT, :2] = (128, 60)
+    lm[:, 3:] = 4.0
+    yy, xx = np.mgrid[0:64, 0:64]
+    heat = np.repeat((8.0 * np.exp(-((xx - 20) ** 2 + (yy - 30) ** 2) / 8.0) - 4.0)[:, :, None], 39, axis=2)
+    a = LandmarkAdapter(COCO17, _contract_model(tmp_path / "m.onnx", lm, heat=heat), flip=False, passes=2)
+    decoded = []
+    real = lmk._dark_points
+    monkeypatch.setattr(lmk, "_dark_points", lambda *args: decoded.append(1) or real(*args))
+    frame = np.zeros((240, 320, 3), np.uint8)
+    r = a.predict(frame)
+    assert len(decoded) == 1                       # the final pass only
+    # the heatmap moved the final points to its peak ...
+    peak = lmk.model_to_frame(np.array([[4 * 20.5, 4 * 30.5]]), r.region)[0]
+    k = COCO17.keypoints.index("left_wrist")
+    assert r.keypoints[k, :2] == pytest.approx(peak, abs=0.5)
+    # ... but the disagreement compares the two passes' regressed points
+    first = lmk.whole_frame_region(320, 240)
+    j = lmk.landmark_index_for("left_wrist")
+    d = np.hypot(*(lmk.model_to_frame(lm[[j], :2], first)[0] - lmk.model_to_frame(lm[[j], :2], r.region)[0]))
+    ext = r.keypoints[:, :2].max(axis=0) - r.keypoints[:, :2].min(axis=0)   # every point decoded to one peak
+    scale = np.sqrt(max(ext[0] * ext[1], 1.0))       # the module's scale, floored at 1 px
+    assert d > 10 and r.signals["pass_disagreement"][k] == pytest.approx(d / scale, rel=1e-6)

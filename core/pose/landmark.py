@@ -36,7 +36,8 @@ Per-joint signals (``PoseResult.signals``, NaN where not computed or not covered
 ``heatmap_entropy`` (multiple-peak entropy of the sigmoid heatmap,
 :func:`..decode.multipeak_entropy`), ``presence`` and ``visibility`` (sigmoid
 of the model's two per-point logits), ``pass_disagreement`` (the pass before
-the final one vs the final one, / scale; NaN with a single pass). Scale is the
+the final one vs the final one, on the regressed points before any heatmap
+decoding, / scale; NaN with a single pass). Scale is the
 square root of the area of the box around the predicted covered keypoints.
 ``confidence`` = visibility x presence; ``score`` = pose flag x mean
 confidence over covered keypoints.
@@ -555,7 +556,10 @@ class LandmarkAdapter(PoseAdapter):
         rgb *= np.float32(1.0 / 255.0)
         return rgb
 
-    def _run_region(self, frame: np.ndarray, region: Region, flip: bool) -> dict:
+    def _run_region(self, frame: np.ndarray, region: Region, flip: bool, decode: bool = True) -> dict:
+        """One model run on ``region`` (and its mirror with ``flip``). ``decode``: take the body
+        points from the heatmaps (``refine``); a pass that only places the next crop skips it,
+        since the crop comes from the auxiliary alignment points, which are never decoded."""
         crop = self.prepare_crop(frame, region)
         if flip:   # the crop and its mirror image (left-right) as one contiguous batch
             batch = np.empty((2,) + crop.shape, np.float32)
@@ -565,12 +569,14 @@ class LandmarkAdapter(PoseAdapter):
             batch = crop[None]
         raw = self.predict_raw(batch)
         lms = raw["landmarks"].astype(np.float64)
-        if self.refine and self.heatmap_decode == "dark":
+        regressed = lms[0]
+        if decode and self.refine and self.heatmap_decode == "dark":
             lms = _dark_points(lms, raw["heatmaps"], self._heat_channels)
-        elif self.refine:     # the crop and its mirror in one go
+        elif decode and self.refine:     # the crop and its mirror in one go
             lms = _refine(lms, raw["heatmaps"])
         hm = raw["heatmaps"][0]
-        res = {"region": region, "lm": lms[0], "heatmaps": hm, "flag": float(raw["pose_flag"][0])}
+        res = {"region": region, "lm": lms[0], "lm_regressed": regressed, "heatmaps": hm,
+               "flag": float(raw["pose_flag"][0])}
         if flip:
             res["lm_flip"] = unmirror_landmarks(lms[1])
         if "features" in raw:
@@ -593,7 +599,7 @@ class LandmarkAdapter(PoseAdapter):
             if reg is None:
                 reg = whole_frame_region(w, h)
                 for _ in range(self.passes - 1):
-                    p = self._run_region(frame, reg, flip=False)
+                    p = self._run_region(frame, reg, flip=False, decode=False)
                     nxt = self._region_from_pass(p)
                     if nxt is None:  # no usable alignment points: stop refining the crop
                         break
@@ -627,7 +633,6 @@ class LandmarkAdapter(PoseAdapter):
         lm = p["lm"]
 
         xy_all = model_to_frame(lm[:, :2], region)          # (39, 2) frame pixels
-        xy_plain = xy_all
         vis_all = _sigmoid(lm[:, 3])
         pres_all = _sigmoid(lm[:, 4])
         have_flip = with_flip and "lm_flip" in p
@@ -669,8 +674,10 @@ class LandmarkAdapter(PoseAdapter):
         signals["heatmap_entropy"] = ent
         pass_d = np.full(k, np.nan)
         if earlier is not None:
-            xy_1 = model_to_frame(earlier["lm"][:, :2], earlier["region"])
-            pass_d[cov] = np.hypot(*(xy_1[idx] - xy_plain[idx]).T) / scale
+            # on the regressed points of both passes: the heatmap decoding does not enter it
+            xy_1 = model_to_frame(earlier["lm_regressed"][:, :2], earlier["region"])
+            xy_2 = model_to_frame(p["lm_regressed"][:, :2], region)
+            pass_d[cov] = np.hypot(*(xy_1[idx] - xy_2[idx]).T) / scale
         signals["pass_disagreement"] = pass_d
 
         score = float(p["flag"] * conf[cov].mean())
