@@ -699,8 +699,8 @@ def _dark_points(lm: np.ndarray, heatmaps: np.ndarray, channels: np.ndarray) -> 
     ``lm`` (B, 39, 5) regressed landmarks of B crops, ``heatmaps`` (B, 64, 64,
     39) logits; only ``channels`` (body points, 0-32) are decoded, from the
     sigmoid of the logits with DARK's default kernel (11, sigma 2 cells: the
-    paper's setting for 64 x 48 maps; this model's training Gaussian is not
-    published). Heatmap cell j covers input pixels [4j, 4j + 4), so a decoded
+    paper's setting for 64 x 48 maps, from memory; this model's training
+    Gaussian is not published). Heatmap cell j covers input pixels [4j, 4j + 4), so a decoded
     cell coordinate c is input pixel 4 (c + 0.5) (the convention of
     :func:`_refine`). A channel with no peak keeps the regressed point.
     """
