@@ -128,7 +128,7 @@ def _subset(pool: Pool, pos, residual) -> Samples:
     return Samples(pool.X[pos], residual[pos], pool.group[pos], pool.area[pos], pool.vis[pos])
 
 
-def run(budgets=(25, 50, 100, 200), seeds=(0, 1), project_dir="sample_project", clips_dir=None,
+def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_project", clips_dir=None,
         say=print):
     from pathlib import Path
     from .project import Project
