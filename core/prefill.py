@@ -7,6 +7,7 @@ whose annotation is still the untouched model proposal, are pre-filled.
 """
 from __future__ import annotations
 
+import os
 import queue
 import threading
 import time
@@ -152,7 +153,11 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
     """
     from .pose import load_adapter
     t0 = time.perf_counter()
-    workers = max(1, int(workers))
+    cores = os.cpu_count() or 1
+    if not 1 <= int(workers) <= cores:
+        raise KinemarkError(f"--workers must be between 1 and {cores} (this machine's cores), not {workers}: "
+                            "each worker runs its own copy of the model")
+    workers = int(workers)
     if adapter is None and make_adapter is None:
         ort_threads = max(1, 2 // workers)
         adapter = load_adapter(project, threads=ort_threads)   # fail early, clearly, if the model is bad

@@ -4,6 +4,7 @@ tests; these catch a command that no longer reaches it, or prints the wrong thin
 from __future__ import annotations
 
 import json
+import os
 import shutil
 from pathlib import Path
 
@@ -35,7 +36,8 @@ def test_propose_rank_and_weights(proj, capsys):
     assert run("propose", proj) == 0
     out = capsys.readouterr().out
     assert "proposed 6 frame(s)" in out and "0 already proposed" in out
-    assert run("propose", proj, "--workers", "2", "--frames", "all") == 0
+    workers = min(2, os.cpu_count() or 1)
+    assert run("propose", proj, "--workers", workers, "--frames", "all") == 0
     assert "proposed 0 frame(s)" in capsys.readouterr().out
     assert run("rank", proj, "--batch", "4") == 0
     lines = [ln for ln in capsys.readouterr().out.splitlines() if ln.strip()]

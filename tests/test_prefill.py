@@ -8,6 +8,7 @@ takes.
 """
 from __future__ import annotations
 
+import os
 import threading
 from pathlib import Path
 
@@ -167,6 +168,10 @@ def test_split_runs_keeps_videos_in_order_and_cuts_a_lone_long_video():
     assert split_runs([], 2) == [[]]
 
 
+TWO_CORES = pytest.mark.skipif((os.cpu_count() or 1) < 2, reason="two workers need two cores")
+
+
+@TWO_CORES
 def test_two_workers_propose_what_one_worker_proposes(two_videos, tmp_path):
     p = two_videos
     made = []
@@ -183,6 +188,7 @@ def test_two_workers_propose_what_one_worker_proposes(two_videos, tmp_path):
         assert p.store.annotation(f.id).keypoints[0, 0] == pytest.approx(10 + means[f.id] / 10, abs=1e-6)
 
 
+@TWO_CORES
 @pytest.mark.skipif(not BUNDLED.is_file(), reason="bundled model not present")
 def test_two_workers_with_the_bundled_model(tmp_path):
     """The default-model path of ``kinemark propose --workers 2`` (each worker loads its own session)."""
@@ -197,3 +203,10 @@ def test_two_workers_with_the_bundled_model(tmp_path):
         p.close()
     for a, b in zip(results[1], results[2]):
         assert np.allclose(a, b, atol=0.05)   # one or two ONNX Runtime threads: same sums up to rounding
+
+
+@pytest.mark.parametrize("workers", [0, -1, 10_000])
+def test_worker_count_outside_the_machine_is_refused(two_videos, workers):
+    with pytest.raises(KinemarkError, match="--workers must be between 1 and"):
+        prefill(two_videos, adapter=PixelModel(), workers=workers)
+    assert two_videos.store.proposal_count() == 0
