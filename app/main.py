@@ -45,6 +45,7 @@ from .panels.strip import ClipStrip
 from .shortcuts import COMMANDS, KeySheet, Keys
 
 CARRY_COUNT = 10
+MAX_CARRY = 500
 LABEL_PAGE, OVERVIEW_PAGE, SIGNOFF_PAGE = 0, 1, 2
 #: Edit commands that change keypoints: on the Sign-off page they are corrections, allowed only
 #: where the person may sign the frame off.
@@ -332,6 +333,7 @@ class MainWindow(QMainWindow):
             "edit.undo": self.undo.undo,
             "edit.redo": self.undo.redo,
             "assist.carry": self.carry_forward,
+            "assist.carry_reach": self.ask_carry_reach,
             "assist.fill": self.fill_from_keyframe,
             "assist.model": self.ask_model,
             "view.fit": self.canvas.fit,
@@ -941,7 +943,7 @@ class MainWindow(QMainWindow):
         if self.project is None or self.frame_id is None:
             return
         fid = self.frame_id
-        count = int(self.settings.value("carry_count", CARRY_COUNT))
+        count = self.carry_reach()
         user = self.user_name
 
         def work(project, progress, cancel):
@@ -949,6 +951,23 @@ class MainWindow(QMainWindow):
 
         self.background.run("Carrying points forward", work, root=self.project.root,
                             on_done=lambda ch: self.push_changes("Carry forward", ch))
+
+    def carry_reach(self) -> int:
+        """How many following sampled frames Carry forward fills (a setting of this computer)."""
+        try:
+            n = int(self.settings.value("carry_count", CARRY_COUNT))
+        except (TypeError, ValueError):
+            return CARRY_COUNT
+        return n if 1 <= n <= MAX_CARRY else CARRY_COUNT
+
+    def ask_carry_reach(self):
+        n, ok = QInputDialog.getInt(self, "Carry-forward reach",
+                                    "Following sampled frames that Carry forward fills:",
+                                    self.carry_reach(), 1, MAX_CARRY, 1)
+        if ok:
+            self.settings.setValue("carry_count", int(n))
+            self.settings.sync()
+            self.statusBar().showMessage(f"Carry forward now fills the next {n} sampled frame(s)", 5000)
 
     # ---- the model -----------------------------------------------------------------------------
 

@@ -47,6 +47,8 @@ COMMANDS: tuple[Command, ...] = (
     Command("edit.redo", "Redo", ("Ctrl+Shift+Z", "Ctrl+Y"), "make the undone change again", "Edit"),
     Command("assist.carry", "Carry forward", ("P",),
             "track this frame's points into the following sampled frames", "Assist"),
+    Command("assist.carry_reach", "Carry-forward reach…", ("Shift+P",),
+            "how many following sampled frames Carry forward fills (kept on this computer)", "Assist"),
     Command("assist.fill", "Fill from keyframe", ("I",),
             "fill the frames between the previous keyframe and this one in a straight line", "Assist"),
     Command("assist.model", "Ask the model", ("M",), "pre-fill this frame with the pose model", "Assist"),

@@ -552,3 +552,28 @@ def test_study_target_is_set_from_the_project_menu(window, qtbot, monkeypatch):
     qtbot.waitUntil(lambda: not window.background.busy)
     assert "only a reviewer or admin" in window.background.boxes[-1].text()
     assert ops.target(window.project) == 150
+
+
+def test_carry_forward_reach_is_asked_kept_and_used(qtbot, project, settings, tmp_path, monkeypatch):
+    from PySide6.QtWidgets import QInputDialog
+    from kinemark.core.media import Sampling
+    from kinemark.core.ops import add_media
+
+    from .conftest import write_texture_video
+    add_media(project, [write_texture_video(tmp_path / "tex.avi")], sampling=Sampling(every=3))
+    window = open_window(qtbot, project.root, settings)
+    assert len(window.order) >= 3
+    monkeypatch.setattr(QInputDialog, "getInt", staticmethod(lambda *a: (1, True)))
+    window.actions["assist.carry_reach"].trigger()
+    assert int(settings.value("carry_count")) == 1
+    window.go(window.order[0])
+    window.set_point_index(0)
+    window.put_at(60.0, 50.0)
+    _key(window, Qt.Key_P)
+    qtbot.waitUntil(lambda: not window.background.busy, timeout=20000)
+    s = window.project.store
+    assert s.annotation(window.order[1]) is not None      # the next sampled frame only
+    assert s.annotation(window.order[2]) is None
+    settings.setValue("carry_count", "lots")               # a damaged setting falls back to the default
+    assert window.carry_reach() == 10
+    window.close()
