@@ -55,13 +55,27 @@ def from_crop(uv: np.ndarray, region: dict) -> np.ndarray:
     return np.stack([region["cx"] + c * u - s * v, region["cy"] + s * u + c * v], axis=-1)
 
 
-def features(kps_crop: np.ndarray, confidence: np.ndarray, embedding: np.ndarray | None) -> np.ndarray:
-    """One row per sample: every joint's crop x, y, its confidence, and the embedding."""
+def features(kps_crop: np.ndarray, confidence: np.ndarray, embedding: np.ndarray | None,
+             regressed_crop: np.ndarray | None = None) -> np.ndarray:
+    """One row per sample: every joint's crop x, y, its confidence, the embedding, and (when
+    given) how far the model's regression head put each joint from the reported point, in
+    crop units (the heatmap decoding and the regression disagree where one of them is off)."""
     n = len(kps_crop)
     parts = [np.nan_to_num(kps_crop.reshape(n, -1)), np.nan_to_num(confidence.reshape(n, -1))]
     if embedding is not None:
         parts.append(np.nan_to_num(embedding.reshape(n, -1)))
+    if regressed_crop is not None:
+        parts.append(np.nan_to_num((regressed_crop - kps_crop).reshape(n, -1)))
     return np.hstack(parts)
+
+
+def regressed_points(signals: dict | None, K: int) -> np.ndarray | None:
+    """(K, 2) the regression head's points stored with a proposal (frame pixels), or None
+    for a proposal made before they were stored (or by a model that has none)."""
+    if not signals or "regressed_x" not in signals or "regressed_y" not in signals:
+        return None
+    xy = np.column_stack([np.asarray(signals["regressed_x"], float), np.asarray(signals["regressed_y"], float)])
+    return xy if xy.shape == (K, 2) else None
 
 
 # ---- the regression -------------------------------------------------------------------
@@ -200,6 +214,7 @@ class Correction:
     heldout_adapted: dict = field(default_factory=dict)   # joint -> the same, corrected
     summary: dict = field(default_factory=dict)
     with_embedding: bool = False
+    with_regression: bool = False   # features include the regression head's points
     support: "Support | None" = None
 
     @property
@@ -236,7 +251,8 @@ class Correction:
             "trim": {str(j): (v if np.isfinite(v) else None) for j, v in self.trim.items()},
             "heldout_raw": {str(j): v for j, v in self.heldout_raw.items()},
             "heldout_adapted": {str(j): v for j, v in self.heldout_adapted.items()},
-            "summary": self.summary, "with_embedding": self.with_embedding})
+            "summary": self.summary, "with_embedding": self.with_embedding,
+            "with_regression": self.with_regression})
 
     @classmethod
     def from_json(cls, text: str) -> "Correction":
@@ -248,6 +264,7 @@ class Correction:
                    heldout_raw={int(j): v for j, v in d["heldout_raw"].items()},
                    heldout_adapted={int(j): v for j, v in d["heldout_adapted"].items()},
                    summary=d.get("summary", {}), with_embedding=d.get("with_embedding", False),
+                   with_regression=d.get("with_regression", False),
                    support=None if not d.get("support") else Support(
                        np.array(d["support"]["mu"]), np.array(d["support"]["sd"]),
                        np.array(d["support"]["points"], dtype=np.float32).reshape(
@@ -360,7 +377,7 @@ def evaluate(corr: Correction | None, s: Samples, sigmas: np.ndarray) -> dict:
 
 # ---- from a project ---------------------------------------------------------------------
 
-def samples_from(pairs, K: int, *, with_embedding: bool):
+def samples_from(pairs, K: int, *, with_embedding: bool, with_regression: bool = False):
     """Build Samples from (proposal, truth keypoints (K,3), truth area in pixels, group) tuples.
 
     Proposals need a stored region (the crop they were predicted in).
@@ -376,7 +393,9 @@ def samples_from(pairs, K: int, *, with_embedding: bool):
         bad = (np.asarray(truth)[:, 2] <= 0) | (prop.confidence <= 0) | ~np.isfinite(r).all(axis=1)
         r[bad] = np.nan
         emb = prop.embedding if with_embedding else None
-        X.append(features(pc[None], np.asarray(prop.confidence)[None], None if emb is None else emb[None])[0])
+        rg = to_crop(regressed_points(prop.signals, K), reg)[None] if with_regression else None
+        X.append(features(pc[None], np.asarray(prop.confidence)[None], None if emb is None else emb[None],
+                          rg)[0])
         R.append(r)
         G.append(group)
         A.append(area_px / (reg["w"] * reg["h"]))
@@ -397,28 +416,40 @@ class Corrector:
         if reg is None or not self.corr.active:
             return kps, sources
         rd = {"cx": reg.cx, "cy": reg.cy, "w": reg.w, "h": reg.h, "angle": reg.angle} if not isinstance(reg, dict) else reg
-        return apply_to(self.corr, kps, res.confidence, res.embedding, rd, sources)
+        return apply_to(self.corr, kps, res.confidence, res.embedding, rd, sources, res.signals)
 
 
-def _frame_features(corr: Correction, kps, confidence, embedding, region: dict):
-    """(crop coordinates (K, 2), feature row (1, F)) of one proposal, as the correction sees it."""
+def _frame_features(corr: Correction, kps, confidence, embedding, region: dict, signals):
+    """(crop coordinates (K, 2), feature row (1, F) or None) of one proposal, as the correction
+    sees it; None when the correction needs the regression head's points and they are missing."""
+    K = len(kps)
     pc = to_crop(np.asarray(kps)[:, :2], region)
+    rg = None
+    if corr.with_regression:
+        xy = regressed_points(signals, K)
+        if xy is None:
+            return pc, None
+        rg = to_crop(xy, region)[None]
     X = features(pc[None], np.asarray(confidence)[None],
-                 None if (embedding is None or not corr.with_embedding) else np.asarray(embedding)[None])
+                 None if (embedding is None or not corr.with_embedding) else np.asarray(embedding)[None], rg)
     return pc, X
 
 
-def apply_to(corr: Correction, kps, confidence, embedding, region: dict, sources):
-    out, src, _ = _apply(corr, kps, confidence, embedding, region, sources)
+def apply_to(corr: Correction, kps, confidence, embedding, region: dict, sources, signals):
+    """Corrected keypoints and sources of one proposal. ``signals``: the proposal's (it holds the
+    regression head's points, which a correction fitted with them needs; None when there are none)."""
+    out, src, _ = _apply(corr, kps, confidence, embedding, region, sources, signals)
     return out, src
 
 
-def _apply(corr: Correction, kps, confidence, embedding, region: dict, sources):
+def _apply(corr: Correction, kps, confidence, embedding, region: dict, sources, signals):
     """:func:`apply_to`, also saying whether the frame lies inside the correction's support."""
     K = len(kps)
-    pc, X = _frame_features(corr, kps, confidence, embedding, region)
+    pc, X = _frame_features(corr, kps, confidence, embedding, region, signals)
     out = np.array(kps, float)
     src = list(sources)
+    if X is None:          # the correction cannot see this proposal as it was fitted: raw stands
+        return out, src, False
     inside = corr.covers(X)
     if not inside[0]:      # unlike every labelled frame: the raw proposal stands
         return out, src, False
@@ -462,9 +493,11 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
     pairs = [x for x in pairs if x[0].model_hash == model_hash]
     K = project.skeleton.num_keypoints
     use_emb = with_embedding and all(p.embedding is not None for p, *_ in pairs)
-    s = samples_from(pairs, K, with_embedding=use_emb)
+    use_reg = all(regressed_points(p.signals, K) is not None for p, *_ in pairs)
+    s = samples_from(pairs, K, with_embedding=use_emb, with_regression=use_reg)
     corr = fit_correction(s, project.skeleton.sigma_array, model_hash)
     corr.with_embedding = use_emb
+    corr.with_regression = use_reg
     who = project.user(user)
     project.store.set_meta("adaptation", corr.to_json(), user_id=who.id)
     changed, outside = reapply(project, corr, user_id=who.id) if corr.active else ((), 0)
@@ -509,7 +542,7 @@ def reapply(project, corr: Correction, *, user_id: int | None = None) -> tuple[l
         if prop is None or not prop.region:
             continue
         kps, src, inside = _apply(corr, prop.keypoints, prop.confidence, prop.embedding, prop.region,
-                                  ["model"] * len(prop.keypoints))
+                                  ["model"] * len(prop.keypoints), prop.signals)
         outside += not inside
         same = np.where(kps[:, 2:3] > 0, kps, 0.0)     # as stored: unlabelled points at (0, 0, 0)
         if tuple(src) == tuple(a.sources) and np.allclose(same, a.keypoints, rtol=0, atol=1e-9):

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-from .adapt import Samples, evaluate, features, fit_correction, to_crop
+from .adapt import Samples, evaluate, features, fit_correction, regressed_points, to_crop
 from .demo import simulate_annotator, truth_for_project
 from .metrics import oks
 from .ranking import (RankingQueue, RankWeights, frame_uncertainty, joint_uncertainty, pose_features,
@@ -65,6 +65,9 @@ def load_pool(project, clips_dir, seed: int = 0) -> Pool:
     rng = np.random.default_rng(seed)
     rows = dict(media=[], index=[], group=[], raw=[], thumbs=[], X=[], Rt=[], Rl=[], area=[], vis=[])
     P = [props[f] for f in ids]
+    # the correction's features as fit_project builds them: with the regression head's
+    # points when every proposal has them
+    use_reg = all(regressed_points(p.signals, skel.num_keypoints) is not None for p in P)
     for fid, p in zip(ids, P):
         kps, bbox, area = gt.by_frame[fid]
         f = frames[fid]
@@ -78,8 +81,10 @@ def load_pool(project, clips_dir, seed: int = 0) -> Pool:
                                          interpolation=cv2.INTER_AREA).ravel().astype(np.float32) / 255.0)
         reg = p.region
         pc = to_crop(p.keypoints[:, :2], reg)
+        rg = regressed_points(p.signals, skel.num_keypoints) if use_reg else None
         rows["X"].append(features(pc[None], np.nan_to_num(p.confidence)[None],
-                                  None if p.embedding is None else p.embedding[None])[0])
+                                  None if p.embedding is None else p.embedding[None],
+                                  None if rg is None else to_crop(rg, reg)[None])[0])
         rows["Rt"].append(_residual(p.keypoints[:, :2], kps, p.confidence, reg, p.keypoints[:, 2]))
         lab, _ = simulate_annotator(kps, p.keypoints, bbox, rng)
         rows["Rl"].append(_residual(p.keypoints[:, :2], lab, p.confidence, reg, p.keypoints[:, 2]))

@@ -289,7 +289,7 @@ def run_demo(root: Path, *, clips_dir: Path | None = None, size: str = "demo", s
             if pr.frame_id in rest:
                 if corr_active is not None and pr.region:
                     k2, _ = apply_to(corr_active, pr.keypoints, pr.confidence, pr.embedding, pr.region,
-                                     ["model"] * len(pr.keypoints))
+                                     ["model"] * len(pr.keypoints), pr.signals)
                 else:
                     k2 = pr.keypoints
                 adapted[pr.frame_id] = (k2, pr.score)

@@ -89,8 +89,8 @@ def test_json_round_trip_and_apply():
     reg = {"cx": 100.0, "cy": 100.0, "w": 200.0, "h": 200.0, "angle": 0.0}
     kps = np.column_stack([np.linspace(20, 180, 17), np.linspace(30, 170, 17), np.full(17, 2)])
     kps[0, 2] = 0
-    a, sa = apply_to(corr, kps, np.full(17, 0.8), None, reg, ["model"] * 17)
-    b, sb = apply_to(back, kps, np.full(17, 0.8), None, reg, ["model"] * 17)
+    a, sa = apply_to(corr, kps, np.full(17, 0.8), None, reg, ["model"] * 17, None)
+    b, sb = apply_to(back, kps, np.full(17, 0.8), None, reg, ["model"] * 17, None)
     np.testing.assert_allclose(a, b)
     assert sa[9] == "adapted" and sa[0] == "model"           # uncorrected / absent joints stay as they are
     assert a[9, 0] - kps[9, 0] == pytest.approx(0.03 * 200, abs=2.0)   # the planted offset, in pixels
@@ -163,3 +163,44 @@ def test_ridge_path_equals_one_fit_per_penalty(n):
     for lam, m in zip(lams, ridge_path(X, Y, lams)):
         np.testing.assert_allclose(ridge_predict(m, Xt), ridge_predict(ridge_fit(X, Y, lam), Xt),
                                    rtol=1e-7, atol=1e-9)
+
+
+def test_the_regression_heads_points_let_the_correction_follow_where_they_disagree():
+    """Invented test data, built through samples_from as fit_project does: on the knee
+    (joint 13) the truth sits 60 % of the way from the reported point to the regression
+    head's point, which differs from frame to frame. Only a correction that sees the
+    regressed points can learn it; one fitted with them also needs them to apply."""
+    from types import SimpleNamespace
+
+    from kinemark.core.adapt import regressed_points, samples_from
+    rng = np.random.default_rng(5)
+    reg = {"cx": 200.0, "cy": 200.0, "w": 200.0, "h": 200.0, "angle": 0.0}
+    pairs = []
+    for n in range(120):
+        kps = np.column_stack([rng.uniform(120, 280, 17), rng.uniform(120, 280, 17), np.full(17, 2.0)])
+        regressed = kps[:, :2] + rng.normal(0, 12, (17, 2))
+        truth = kps.copy()
+        truth[:, :2] += rng.normal(0, 0.5, (17, 2))
+        truth[13, :2] = kps[13, :2] + 0.6 * (regressed[13] - kps[13, :2])
+        sig = {"regressed_x": regressed[:, 0].tolist(), "regressed_y": regressed[:, 1].tolist()}
+        prop = SimpleNamespace(region=reg, keypoints=kps, confidence=np.full(17, 0.9), embedding=None,
+                               signals=sig)
+        pairs.append((prop, truth, 100.0 * 160.0, "ABCDEF"[n % 6]))
+    assert np.allclose(regressed_points(pairs[0][0].signals, 17), np.column_stack(
+        [pairs[0][0].signals["regressed_x"], pairs[0][0].signals["regressed_y"]]))
+    plain = fit_correction(samples_from(pairs[:90], 17, with_embedding=False), SIG)
+    with_reg = fit_correction(samples_from(pairs[:90], 17, with_embedding=False, with_regression=True), SIG)
+    with_reg.with_regression = True
+    assert with_reg.use[13] and not plain.use[13]
+    test = samples_from(pairs[90:], 17, with_embedding=False, with_regression=True)
+    pred = with_reg.predict_residual(test.X, 17)
+    assert np.abs(test.R[:, 13] - pred[:, 13]).mean() < 0.3 * np.abs(test.R[:, 13]).mean()
+    # applied to a proposal: moved towards the regressed point; without them, the raw proposal stands
+    prop, truth, _, _ = pairs[95]
+    back = Correction.from_json(with_reg.to_json())
+    assert back.with_regression
+    out, src = apply_to(back, prop.keypoints, prop.confidence, None, reg, ["model"] * 17, prop.signals)
+    assert src[13] == "adapted"
+    assert np.hypot(*(out[13, :2] - truth[13, :2])) < 0.5 * np.hypot(*(prop.keypoints[13, :2] - truth[13, :2]))
+    raw, raw_src = apply_to(back, prop.keypoints, prop.confidence, None, reg, ["model"] * 17, None)
+    assert np.array_equal(raw, prop.keypoints) and set(raw_src) == {"model"}

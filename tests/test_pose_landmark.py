@@ -662,3 +662,7 @@ def test_pass_disagreement_uses_the_regressed_points_and_only_the_final_pass_is_
     ext = r.keypoints[:, :2].max(axis=0) - r.keypoints[:, :2].min(axis=0)   # every point decoded to one peak
     scale = np.sqrt(max(ext[0] * ext[1], 1.0))       # the module's scale, floored at 1 px
     assert d > 10 and r.signals["pass_disagreement"][k] == pytest.approx(d / scale, rel=1e-6)
+    # the regression head's own final points travel with the proposal (for the correction)
+    reg_final = lmk.model_to_frame(lm[[j], :2], r.region)[0]
+    assert (r.signals["regressed_x"][k], r.signals["regressed_y"][k]) == pytest.approx(tuple(reg_final))
+    assert np.hypot(*(reg_final - r.keypoints[k, :2])) > 1.0      # not the decoded point

@@ -37,7 +37,9 @@ Per-joint signals (``PoseResult.signals``, NaN where not computed or not covered
 :func:`..decode.multipeak_entropy`), ``presence`` and ``visibility`` (sigmoid
 of the model's two per-point logits), ``pass_disagreement`` (the pass before
 the final one vs the final one, on the regressed points before any heatmap
-decoding, / scale; NaN with a single pass). Scale is the
+decoding, / scale; NaN with a single pass), and ``regressed_x`` / ``regressed_y``
+(not an uncertainty: the regression head's points in frame pixels, before
+heatmap decoding, for the per-project correction). Scale is the
 square root of the area of the box around the predicted covered keypoints.
 ``confidence`` = visibility x presence; ``score`` = pose flag x mean
 confidence over covered keypoints.
@@ -579,6 +581,7 @@ class LandmarkAdapter(PoseAdapter):
                "flag": float(raw["pose_flag"][0])}
         if flip:
             res["lm_flip"] = unmirror_landmarks(lms[1])
+            res["lm_flip_regressed"] = unmirror_landmarks(raw["landmarks"][1].astype(np.float64))
         if "features" in raw:
             res["features"] = raw["features"][0]
         return res
@@ -679,6 +682,16 @@ class LandmarkAdapter(PoseAdapter):
             xy_2 = model_to_frame(p["lm_regressed"][:, :2], region)
             pass_d[cov] = np.hypot(*(xy_1[idx] - xy_2[idx]).T) / scale
         signals["pass_disagreement"] = pass_d
+        # the regression head's own points (frame pixels; averaged with the mirror's like the
+        # reported ones), before heatmap decoding: the per-project correction can learn from
+        # where the two disagree
+        reg_xy = model_to_frame(p["lm_regressed"][:, :2], region)
+        if have_flip and self.flip_average:
+            reg_xy = (reg_xy + model_to_frame(p["lm_flip_regressed"][:, :2], region)) / 2.0
+        for n, c in (("regressed_x", 0), ("regressed_y", 1)):
+            col = np.full(k, np.nan)
+            col[cov] = reg_xy[idx, c]
+            signals[n] = col
 
         score = float(p["flag"] * conf[cov].mean())
         emb = None
