@@ -28,7 +28,9 @@ def _check_shape(hm: np.ndarray) -> np.ndarray:
 
 
 def _as_heatmaps(heatmaps) -> np.ndarray:
-    return _check_shape(np.asarray(heatmaps)).astype(np.float64, copy=False)
+    """(K, H, W) float32 or float64 as given (no copy); other types as float64."""
+    hm = _check_shape(np.asarray(heatmaps))
+    return hm if hm.dtype in (np.float32, np.float64) else hm.astype(np.float64)
 
 
 def _finite(hm: np.ndarray) -> np.ndarray:
@@ -79,10 +81,7 @@ def quarter_offset_decode(heatmaps: np.ndarray) -> tuple[np.ndarray, np.ndarray]
 
     Returns ``(coords, maxvals)`` with coords (K, 2) float64 (x, y).
     """
-    hm = _check_shape(np.asarray(heatmaps))
-    if hm.dtype not in (np.float32, np.float64):
-        hm = hm.astype(np.float64)
-    hm = _finite(hm)
+    hm = _finite(_as_heatmaps(heatmaps))
     k, h, w = hm.shape
     ci, maxvals = _argmax(hm)
     coords = ci.astype(np.float64)
@@ -160,18 +159,14 @@ def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
     the decoding reads are transformed (the argmax is the same either way);
     ``maxvals`` are then transformed values.
     """
-    hm = _check_shape(np.asarray(heatmaps))
-    if hm.dtype not in (np.float32, np.float64):
-        hm = hm.astype(np.float64)
-    hm = _finite(hm)
+    hm = _finite(_as_heatmaps(heatmaps))
     k, h, w = hm.shape
     ci, maxvals = _argmax(hm)
     coords = ci.astype(np.float64)
     refined = np.zeros(k, dtype=bool)
     mins = hm.reshape(k, -1).min(axis=1).astype(np.float64)
-    tf = transform if transform is not None else (lambda a: a)
     if transform is not None:
-        maxvals, mins = np.asarray(tf(maxvals), np.float64), np.asarray(tf(mins), np.float64)
+        maxvals, mins = np.asarray(transform(maxvals), np.float64), np.asarray(transform(mins), np.float64)
     no_peak = (maxvals <= 0) | (maxvals - mins <= 1e-12 * np.maximum(1.0, np.abs(maxvals)))
     todo = np.flatnonzero(~no_peak)
     if todo.size == 0:
@@ -195,10 +190,12 @@ def dark_decode(heatmaps: np.ndarray, kernel: int = 11, *,
     # log's floor needs the whole blurred map and its maximum (scale >= 1, so the floor on
     # the rescaled map is then reached exactly as on the whole-map computation).
     x, y = ci[todo, 0], ci[todo, 1]
-    b9 = _blur_around(hm, x, y, sig, ksize, tf, channels=todo)
+    b9 = _blur_around(hm, x, y, sig, ksize, transform, channels=todo)
     low = (b9 < _LOG_EPS).any(axis=(1, 2))
     if low.any():
-        whole = np.asarray(tf(hm[todo[low]].astype(np.float64)), np.float64)
+        whole = hm[todo[low]].astype(np.float64)
+        if transform is not None:
+            whole = np.asarray(transform(whole), np.float64)
         full = _unstacked(cv2.GaussianBlur(_stacked(whole, ksize // 2 + 1, 0.0), (ksize, ksize), sig,
                                            sigmaY=sig, borderType=cv2.BORDER_CONSTANT), whole.shape)
         bmax = full.reshape(full.shape[0], -1).max(axis=1)
