@@ -467,6 +467,19 @@ AP_FLOOR = 0.3
 
 
 @needs_bundled
+def test_prepare_crop_with_its_mirror_is_the_crop_and_the_crop_reversed_left_right(bundled, rendered):
+    """The one-batch crop and mirror hold exactly the single crop and its columns reversed
+    (the mirror image the flip test needs), scaled to [0, 1] as the model expects."""
+    frame = _read_frames(sorted(rendered.glob("*.mp4"))[0])[3]
+    reg = Region(150.0, 110.0, 140.0, 140.0, 0.3, "drawn")
+    one = bundled.prepare_crop(frame, reg)
+    both = bundled.prepare_crop(frame, reg, mirror=True)
+    assert one.shape == (256, 256, 3) and both.shape == (2, 256, 256, 3) and both.dtype == np.float32
+    np.testing.assert_array_equal(both[0], one)
+    np.testing.assert_array_equal(both[1], one[:, ::-1])
+    assert 0.0 <= one.min() and one.max() <= 1.0 and one.max() > 0.1
+
+
 def test_bundled_model_on_a_rendered_person_flip_and_presence(bundled, rendered):
     """On a rendered person: the left/right swap is what makes the mirrored run agree."""
     video = sorted(rendered.glob("*.mp4"))[0]
@@ -647,7 +660,7 @@ def test_pass_disagreement_uses_the_regressed_points_and_only_the_final_pass_is_
     a = LandmarkAdapter(COCO17, _contract_model(tmp_path / "m.onnx", lm, heat=heat), flip=False, passes=2)
     decoded = []
     real = lmk._dark_points
-    monkeypatch.setattr(lmk, "_dark_points", lambda *args: decoded.append(1) or real(*args))
+    monkeypatch.setattr(lmk, "_dark_points", lambda *args, **kw: decoded.append(1) or real(*args, **kw))
     frame = np.zeros((240, 320, 3), np.uint8)
     r = a.predict(frame)
     assert len(decoded) == 1                       # the final pass only

@@ -255,8 +255,12 @@ def _blur_around(hm: np.ndarray, x: np.ndarray, y: np.ndarray, sigma: float, ksi
     if transform is not None:
         patch = np.asarray(transform(patch), np.float64)
     patch = np.where(inside, patch, 0.0)                                  # (K, 3 + 2h, 3 + 2h)
-    along_x = np.lib.stride_tricks.sliding_window_view(patch, ksize, axis=2) @ g   # (K, 3 + 2h, 3)
-    return np.lib.stride_tricks.sliding_window_view(along_x, ksize, axis=1) @ g    # (K, 3, 3)
+    # the separable blur at the 3 centre cells as two small matrix products:
+    # band[i, j] = g[i - j], so (patch @ band)[..., j] = sum_t patch[..., j + t] g[t]
+    n = 3 + 2 * half
+    i, j = np.mgrid[0:n, 0:3]
+    band = np.where((i - j >= 0) & (i - j < ksize), g[np.clip(i - j, 0, ksize - 1)], 0.0)
+    return band.T @ (patch @ band)                                        # (K, 3, 3)
 
 
 def _gather_3x3(maps: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:

@@ -215,9 +215,12 @@ def region_from_alignment(centre_xy, scale_xy, *, scale: float = 1.25,
     return Region(float(c[0]), float(c[1]), side, side, upright_angle(c, t), source)
 
 
-def model_to_frame(points_uv: np.ndarray, region: Region) -> np.ndarray:
-    """(N, 2) model-output x, y (input pixels, edges at 0 and 256) -> frame pixels."""
-    m = crop_to_frame_matrix(region, INPUT_SIZE, INPUT_SIZE)
+def model_to_frame(points_uv: np.ndarray, region: Region, matrix: np.ndarray | None = None) -> np.ndarray:
+    """(N, 2) model-output x, y (input pixels, edges at 0 and 256) -> frame pixels.
+
+    ``matrix``: :func:`crop.crop_to_frame_matrix` of ``region`` at the model's input
+    size, when the caller maps several point sets through one region."""
+    m = crop_to_frame_matrix(region, INPUT_SIZE, INPUT_SIZE) if matrix is None else matrix
     return apply_affine(m, np.asarray(points_uv, dtype=float) - 0.5)
 
 
@@ -237,6 +240,20 @@ def unmirror_landmarks(raw: np.ndarray, width: int = INPUT_SIZE) -> np.ndarray:
 def _sigmoid(z, dtype=np.float64):
     z = np.asarray(z, dtype=dtype)
     return 1.0 / (1.0 + np.exp(-np.clip(z, -60.0, 60.0)))
+
+
+def _sigmoid_inplace(z: np.ndarray) -> np.ndarray:
+    """:func:`_sigmoid` of a float array, written over it (no temporary arrays)."""
+    np.negative(z, out=z)
+    np.clip(z, -60.0, 60.0, out=z)
+    np.exp(z, out=z)
+    z += 1.0
+    return np.reciprocal(z, out=z)
+
+
+def _channel_major(heatmaps: np.ndarray, channels: np.ndarray) -> np.ndarray:
+    """(B, C, 64, 64) contiguous copy of ``channels`` of (B, 64, 64, 39) heatmaps."""
+    return np.ascontiguousarray(np.take(heatmaps, channels, axis=3).transpose(0, 3, 1, 2))
 
 
 # --- loading --------------------------------------------------------------------------
@@ -362,6 +379,11 @@ class LandmarkAdapter(PoseAdapter):
         used = self._map[self._covered]
         both = np.union1d(used, MODEL_FLIP_PERMUTATION[used])
         self._heat_channels = both[both < NUM_BODY].astype(int)
+        # where the skeleton's channels sit among them (for the entropy), if all do
+        rows = np.searchsorted(self._heat_channels, used)
+        fits = bool(np.all(rows < len(self._heat_channels))) and \
+            bool(np.array_equal(self._heat_channels[np.minimum(rows, len(self._heat_channels) - 1)], used))
+        self._entropy_rows = rows if fits and len(used) else None
 
         self.model_path = self._resolve_path(model_path)
         data = self._read_bytes(self.model_path)
@@ -549,36 +571,45 @@ class LandmarkAdapter(PoseAdapter):
         return out
 
     @staticmethod
-    def prepare_crop(frame_bgr: np.ndarray, region: Region) -> np.ndarray:
-        """The model's input for ``region``: (256, 256, 3) RGB float32 in [0, 1]."""
+    def prepare_crop(frame_bgr: np.ndarray, region: Region, *, mirror: bool = False) -> np.ndarray:
+        """The model's input for ``region``: (256, 256, 3) RGB float32 in [0, 1]; with
+        ``mirror``, (2, 256, 256, 3): the crop and its left-right mirror image."""
         crop = extract_crop(frame_bgr, region, INPUT_SIZE, INPUT_SIZE)
         # cvtColor rather than a reversed-channel view: astype over a negative stride is
         # several times slower, and the values are the same
-        rgb = cv2.cvtColor(crop, cv2.COLOR_BGR2RGB).astype(np.float32)
-        rgb *= np.float32(1.0 / 255.0)
-        return rgb
+        rgb = cv2.cvtColor(crop, cv2.COLOR_BGR2RGB)
+        out = np.empty(((2,) if mirror else ()) + rgb.shape, np.float32)
+        # mirrored and scaled straight into one contiguous batch: the 8-bit image is
+        # flipped, not the float one, and the scaling is one pass (float32 x * (1/255),
+        # as before)
+        scale = np.float32(1.0 / 255.0)
+        if mirror:
+            np.multiply(rgb, scale, out=out[0])
+            np.multiply(cv2.flip(rgb, 1), scale, out=out[1])
+        else:
+            np.multiply(rgb, scale, out=out)
+        return out
 
     def _run_region(self, frame: np.ndarray, region: Region, flip: bool, decode: bool = True) -> dict:
         """One model run on ``region`` (and its mirror with ``flip``). ``decode``: take the body
         points from the heatmaps (``refine``); a pass that only places the next crop skips it,
         since the crop comes from the auxiliary alignment points, which are never decoded."""
-        crop = self.prepare_crop(frame, region)
-        if flip:   # the crop and its mirror image (left-right) as one contiguous batch
-            batch = np.empty((2,) + crop.shape, np.float32)
-            batch[0] = crop
-            batch[1] = cv2.flip(crop, 1)
-        else:
-            batch = crop[None]
-        raw = self.predict_raw(batch)
+        # with flip, the crop and its mirror image (left-right) as one batch
+        batch = self.prepare_crop(frame, region, mirror=flip)
+        raw = self.predict_raw(batch if flip else batch[None])
         lms = raw["landmarks"].astype(np.float64)
         regressed = lms[0]
+        # the decoded channels, channel-major, gathered once for DARK and the entropy
+        maps = _channel_major(raw["heatmaps"], self._heat_channels) if decode else None
         if decode and self.refine and self.heatmap_decode == "dark":
-            lms = _dark_points(lms, raw["heatmaps"], self._heat_channels)
+            lms = _dark_points(lms, raw["heatmaps"], self._heat_channels, maps=maps)
         elif decode and self.refine:     # the crop and its mirror in one go
             lms = _refine(lms, raw["heatmaps"])
         hm = raw["heatmaps"][0]
         res = {"region": region, "lm": lms[0], "lm_regressed": regressed, "heatmaps": hm,
                "flag": float(raw["pose_flag"][0])}
+        if maps is not None:
+            res["maps"] = maps[0]
         if flip:
             res["lm_flip"] = unmirror_landmarks(lms[1])
             res["lm_flip_regressed"] = unmirror_landmarks(raw["landmarks"][1].astype(np.float64))
@@ -633,14 +664,15 @@ class LandmarkAdapter(PoseAdapter):
         k = self.skeleton.num_keypoints
         cov, idx = self._covered, self._map[self._covered]
         region = p["region"]
+        m = crop_to_frame_matrix(region, INPUT_SIZE, INPUT_SIZE)
         lm = p["lm"]
 
-        xy_all = model_to_frame(lm[:, :2], region)          # (39, 2) frame pixels
+        xy_all = model_to_frame(lm[:, :2], region, m)       # (39, 2) frame pixels
         vis_all = _sigmoid(lm[:, 3])
         pres_all = _sigmoid(lm[:, 4])
         have_flip = with_flip and "lm_flip" in p
         if have_flip:
-            xy_flip = model_to_frame(p["lm_flip"][:, :2], region)
+            xy_flip = model_to_frame(p["lm_flip"][:, :2], region, m)
             flip_dist = np.hypot(*(xy_flip - xy_all).T)
             if self.flip_average:
                 xy_all = (xy_all + xy_flip) / 2.0
@@ -658,7 +690,7 @@ class LandmarkAdapter(PoseAdapter):
         x, y = kp[:, 0], kp[:, 1]
         inside = cov & (x >= 0) & (x <= w - 1) & (y >= 0) & (y <= h - 1)
         v = np.where(conf >= self.visible_threshold, 2, 1)
-        v = np.where(inside & (np.nan_to_num(pres) >= self.absent_threshold), v, 0)
+        v = np.where(inside & (np.where(np.isnan(pres), 0.0, pres) >= self.absent_threshold), v, 0)
         kp[:, 2] = v
 
         pts = kp[cov, :2]
@@ -673,21 +705,25 @@ class LandmarkAdapter(PoseAdapter):
         ent = np.full(k, np.nan)
         # only the channels the skeleton uses
         # (float32 is enough here: the entropy works in float32 anyway)
-        ent[cov] = multipeak_entropy(_sigmoid(np.moveaxis(p["heatmaps"][..., idx], -1, 0), np.float32))
+        if "maps" in p and self._entropy_rows is not None:
+            chans = p["maps"][self._entropy_rows]          # a copy: the sigmoid may overwrite it
+        else:
+            chans = np.moveaxis(p["heatmaps"][..., idx], -1, 0).astype(np.float32)
+        ent[cov] = multipeak_entropy(_sigmoid_inplace(chans.astype(np.float32, copy=False)))
         signals["heatmap_entropy"] = ent
         pass_d = np.full(k, np.nan)
         if earlier is not None:
             # on the regressed points of both passes: the heatmap decoding does not enter it
             xy_1 = model_to_frame(earlier["lm_regressed"][:, :2], earlier["region"])
-            xy_2 = model_to_frame(p["lm_regressed"][:, :2], region)
+            xy_2 = model_to_frame(p["lm_regressed"][:, :2], region, m)
             pass_d[cov] = np.hypot(*(xy_1[idx] - xy_2[idx]).T) / scale
         signals["pass_disagreement"] = pass_d
         # the regression head's own points (frame pixels; averaged with the mirror's like the
         # reported ones), before heatmap decoding: the per-project correction can learn from
         # where the two disagree
-        reg_xy = model_to_frame(p["lm_regressed"][:, :2], region)
+        reg_xy = model_to_frame(p["lm_regressed"][:, :2], region, m)
         if have_flip and self.flip_average:
-            reg_xy = (reg_xy + model_to_frame(p["lm_flip_regressed"][:, :2], region)) / 2.0
+            reg_xy = (reg_xy + model_to_frame(p["lm_flip_regressed"][:, :2], region, m)) / 2.0
         for n, c in (("regressed_x", 0), ("regressed_y", 1)):
             col = np.full(k, np.nan)
             col[cov] = reg_xy[idx, c]
@@ -706,7 +742,8 @@ class LandmarkAdapter(PoseAdapter):
 
 # --- helpers --------------------------------------------------------------------------
 
-def _dark_points(lm: np.ndarray, heatmaps: np.ndarray, channels: np.ndarray) -> np.ndarray:
+def _dark_points(lm: np.ndarray, heatmaps: np.ndarray, channels: np.ndarray, *,
+                 maps: np.ndarray | None = None) -> np.ndarray:
     """Body points' x, y from their heatmaps by DARK (:func:`decode.dark_decode`).
 
     ``lm`` (B, 39, 5) regressed landmarks of B crops, ``heatmaps`` (B, 64, 64,
@@ -716,6 +753,7 @@ def _dark_points(lm: np.ndarray, heatmaps: np.ndarray, channels: np.ndarray) -> 
     Gaussian is not published). Heatmap cell j covers input pixels [4j, 4j + 4), so a decoded
     cell coordinate c is input pixel 4 (c + 0.5) (the convention of
     :func:`_refine`). A channel with no peak keeps the regressed point.
+    ``maps``: those channels already gathered by :func:`_channel_major`.
     """
     out = np.array(lm, dtype=np.float64, copy=True)
     if len(channels) == 0:
@@ -725,7 +763,9 @@ def _dark_points(lm: np.ndarray, heatmaps: np.ndarray, channels: np.ndarray) -> 
     stride = INPUT_SIZE / ww
     # (B * C, 64, 64): every crop's chosen channels in one call; the sigmoid only on the
     # cells the decoding reads
-    maps = hms.transpose(0, 3, 1, 2)[:, channels].reshape(b * len(channels), hh, ww)
+    if maps is None:
+        maps = _channel_major(hms, channels)
+    maps = maps.reshape(b * len(channels), hh, ww)
     res = dark_decode(maps, transform=_sigmoid)
     xy = ((res.coords + 0.5) * stride).reshape(b, len(channels), 2)
     keep = ~res.no_peak.reshape(b, len(channels))
