@@ -11,6 +11,7 @@ peak and never propagates into coordinates.
 """
 from __future__ import annotations
 
+import functools
 from typing import NamedTuple
 
 import cv2
@@ -245,7 +246,7 @@ def _blur_around(hm: np.ndarray, x: np.ndarray, y: np.ndarray, sigma: float, ksi
     _, h, w = hm.shape
     chans = np.arange(hm.shape[0]) if channels is None else np.asarray(channels)
     half = ksize // 2
-    g = cv2.getGaussianKernel(ksize, sigma, cv2.CV_64F).ravel()   # GaussianBlur's own kernel
+    band = _blur_band(ksize, float(sigma))
     offs = np.arange(-1 - half, 2 + half)
     rows, cols = y[:, None] + offs, x[:, None] + offs            # (K, 3 + 2h) each
     inside = (((rows >= 0) & (rows < h))[:, :, None]) & (((cols >= 0) & (cols < w))[:, None, :])
@@ -255,12 +256,19 @@ def _blur_around(hm: np.ndarray, x: np.ndarray, y: np.ndarray, sigma: float, ksi
     if transform is not None:
         patch = np.asarray(transform(patch), np.float64)
     patch = np.where(inside, patch, 0.0)                                  # (K, 3 + 2h, 3 + 2h)
-    # the separable blur at the 3 centre cells as two small matrix products:
-    # band[i, j] = g[i - j], so (patch @ band)[..., j] = sum_t patch[..., j + t] g[t]
-    n = 3 + 2 * half
-    i, j = np.mgrid[0:n, 0:3]
-    band = np.where((i - j >= 0) & (i - j < ksize), g[np.clip(i - j, 0, ksize - 1)], 0.0)
+    # the separable blur at the 3 centre cells as two small matrix products
     return band.T @ (patch @ band)                                        # (K, 3, 3)
+
+
+@functools.lru_cache(maxsize=8)
+def _blur_band(ksize: int, sigma: float) -> np.ndarray:
+    """(ksize + 2, 3) banded matrix of GaussianBlur's own 1-D kernel g: band[i, j] = g[i - j],
+    so (patch @ band)[..., j] = sum_t patch[..., j + t] g[t], the blur at centre cell j."""
+    g = cv2.getGaussianKernel(ksize, sigma, cv2.CV_64F).ravel()
+    i, j = np.mgrid[0:ksize + 2, 0:3]
+    band = np.where((i - j >= 0) & (i - j < ksize), g[np.clip(i - j, 0, ksize - 1)], 0.0)
+    band.flags.writeable = False
+    return band
 
 
 def _gather_3x3(maps: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
