@@ -1,12 +1,18 @@
 """Per-project adaptation: a light correction of the model's proposals learnt from accepted labels.
 
-Method: ridge regression (Hoerl & Kennard, "Ridge Regression: Biased
-Estimation for Nonorthogonal Problems", Technometrics 1970), one small model
-per joint, from the proposal in crop coordinates (every joint's x, y and
-confidence, plus the appearance embedding when there is one) to that joint's
-residual (label minus proposal) in crop coordinates. Crop coordinates are the
-proposal's own region, rotated upright and divided by its size, so one
-correction serves people of any size anywhere in the frame.
+Method: one small regression per joint, from the proposal in crop
+coordinates (every joint's x, y and confidence, plus the appearance
+embedding when there is one) to that joint's residual (label minus proposal)
+in crop coordinates. Crop coordinates are the proposal's own region, rotated
+upright and divided by its size, so one correction serves people of any size
+anywhere in the frame. Each joint's regression is either linear ridge
+regression (Hoerl & Kennard, "Ridge Regression: Biased Estimation for
+Nonorthogonal Problems", Technometrics 1970) or kernel ridge regression with a
+Gaussian (RBF) kernel (Saunders, Gammerman & Vovk, "Ridge Regression Learning
+Algorithm in Dual Variables", ICML 1998), whichever the cross-validation
+below scores higher: the model's errors on a new population are often not
+linear in its own output (a knee that is placed too high only when the leg is
+bent, say).
 
 The regularisation is chosen by cross-validation grouped by participant
 (leave-one-participant-out when there are enough participants), scored by
@@ -32,6 +38,14 @@ MIN_FRAMES = 8
 # training trims: residuals over 3x the joint's median, or none; cross-validation picks per joint
 TRIMS = (3.0, float("inf"))
 MIN_T = 2.0
+# kernel ridge candidates: the RBF kernel exp(-gamma |z - z'|^2 / F) on the F standardised
+# features (dividing by F makes gamma independent of how many features there are), with these
+# gammas and penalties (a project choice, measured on the demo data: see DEVELOPERS.md)
+GAMMAS = (0.03, 0.1, 0.3, 1.0)
+KERNEL_LAMBDAS = (0.01, 0.1, 1.0, 10.0)
+# the kernel candidates solve an n x n system per candidate and fold: above this many labelled
+# frames only linear ridge is tried (a project choice, to keep a refit within seconds)
+KERNEL_MAX_FRAMES = 800
 # a frame is corrected only within this many times the widest nearest-neighbour gap among
 # the labelled frames (in standardised feature space): a project choice, see Support
 SUPPORT_FACTOR = 1.5
@@ -95,6 +109,26 @@ def ridge_fit(X: np.ndarray, Y: np.ndarray, lam: float):
 def ridge_predict(model, X):
     mu, sd, W, b = model
     return ((X - mu) / sd) @ W + b
+
+
+def sq_distances(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """(len(A), len(B)) squared Euclidean distances between rows."""
+    d2 = np.einsum("ij,ij->i", A, A)[:, None] + np.einsum("ij,ij->i", B, B)[None, :] - 2.0 * A @ B.T
+    return np.maximum(d2, 0.0)
+
+
+def rbf_kernel(A: np.ndarray, B: np.ndarray, gamma: float) -> np.ndarray:
+    """Gaussian kernel exp(-gamma |a - b|^2 / F) between the rows of A and B (F columns)."""
+    return np.exp(-gamma * sq_distances(A, B) / max(A.shape[1], 1))
+
+
+def kernel_ridge_fit(Kmat: np.ndarray, Y: np.ndarray, lam: float):
+    """Kernel ridge regression in its dual form (Saunders et al. 1998) with an unpenalised
+    mean: alpha = (K + lam I)^-1 (Y - ȳ); a new row's prediction is k(row, train) @ alpha + ȳ.
+    Returns (alpha, ȳ)."""
+    ym = Y.mean(axis=0)
+    alpha = np.linalg.solve(Kmat + lam * np.eye(len(Kmat)), Y - ym)
+    return alpha, ym
 
 
 def ridge_path(X: np.ndarray, Y: np.ndarray, lambdas) -> list:
@@ -207,9 +241,13 @@ class Correction:
 
     model_hash: str
     use: np.ndarray                 # (K,) bool: joints whose correction beat the raw model
-    models: dict = field(default_factory=dict)    # joint -> (mu, sd, W, b)
+    # joint -> linear (mu, sd, W, b), or kernel ("rbf", gamma, rows, alpha, b): rows index the
+    # support's points, the kernel's training frames
+    models: dict = field(default_factory=dict)
     lam: dict = field(default_factory=dict)
     trim: dict = field(default_factory=dict)      # joint -> the training trim chosen (inf: none)
+    kind: dict = field(default_factory=dict)      # joint -> "linear" or "rbf" (kernel ridge)
+    gamma: dict = field(default_factory=dict)     # joint -> the kernel's gamma (kernel joints)
     heldout_raw: dict = field(default_factory=dict)       # joint -> held-out mean OKS similarity, raw
     heldout_adapted: dict = field(default_factory=dict)   # joint -> the same, corrected
     summary: dict = field(default_factory=dict)
@@ -234,8 +272,18 @@ class Correction:
         out = np.zeros((len(X), K, 2))
         if inside is None:
             inside = self.covers(X)
+        d2 = None
         for j, m in self.models.items():
-            if self.use[j]:
+            if not self.use[j] or not inside.any():
+                continue
+            if _is_kernel(m):
+                _, gamma, rows, alpha, b = m
+                if d2 is None:   # one distance matrix serves every kernel joint
+                    sup = self.support
+                    Z = (np.asarray(X[inside], float) - sup.mu) / sup.sd
+                    d2 = sq_distances(Z, sup.points.astype(np.float64)) / max(Z.shape[1], 1)
+                out[inside, j] = np.exp(-gamma * d2[:, rows]) @ alpha + b
+            else:
                 out[inside, j] = ridge_predict(m, X[inside])
         return out
 
@@ -246,9 +294,13 @@ class Correction:
                                                  "points": np.round(sup.points, 5).tolist(),
                                                  "radius": sup.radius},
             "model_hash": self.model_hash, "use": self.use.astype(int).tolist(),
-            "models": {str(j): [a.tolist() for a in m] for j, m in self.models.items()},
+            "models": {str(j): ({"kind": "rbf", "gamma": m[1], "rows": np.asarray(m[2]).tolist(),
+                                 "alpha": m[3].tolist(), "b": m[4].tolist()} if _is_kernel(m)
+                                else [a.tolist() for a in m]) for j, m in self.models.items()},
             "lam": {str(j): v for j, v in self.lam.items()},
             "trim": {str(j): (v if np.isfinite(v) else None) for j, v in self.trim.items()},
+            "kind": {str(j): v for j, v in self.kind.items()},
+            "gamma": {str(j): v for j, v in self.gamma.items()},
             "heldout_raw": {str(j): v for j, v in self.heldout_raw.items()},
             "heldout_adapted": {str(j): v for j, v in self.heldout_adapted.items()},
             "summary": self.summary, "with_embedding": self.with_embedding,
@@ -258,9 +310,11 @@ class Correction:
     def from_json(cls, text: str) -> "Correction":
         d = json.loads(text)
         return cls(model_hash=d["model_hash"], use=np.array(d["use"], bool),
-                   models={int(j): tuple(np.array(a) for a in m) for j, m in d["models"].items()},
+                   models={int(j): _model_from_json(m) for j, m in d["models"].items()},
                    lam={int(j): v for j, v in d["lam"].items()},
                    trim={int(j): (float("inf") if v is None else v) for j, v in d.get("trim", {}).items()},
+                   kind={int(j): v for j, v in d.get("kind", {}).items()},
+                   gamma={int(j): v for j, v in d.get("gamma", {}).items()},
                    heldout_raw={int(j): v for j, v in d["heldout_raw"].items()},
                    heldout_adapted={int(j): v for j, v in d["heldout_adapted"].items()},
                    summary=d.get("summary", {}), with_embedding=d.get("with_embedding", False),
@@ -271,9 +325,28 @@ class Correction:
                            -1, len(d["support"]["mu"])), float(d["support"]["radius"])))
 
 
+def _is_kernel(m) -> bool:
+    return isinstance(m[0], str)
+
+
+def _model_from_json(m):
+    if isinstance(m, dict):
+        return ("rbf", float(m["gamma"]), np.array(m["rows"], dtype=int), np.array(m["alpha"], float),
+                np.array(m["b"], float))
+    return tuple(np.array(a) for a in m)
+
+
 def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
-                   lambdas=LAMBDAS, min_frames: int = MIN_FRAMES, trims=TRIMS) -> Correction:
-    """Fit per-joint ridge corrections with participant-grouped cross-validation.
+                   lambdas=LAMBDAS, min_frames: int = MIN_FRAMES, trims=TRIMS,
+                   gammas=GAMMAS, kernel_lambdas=KERNEL_LAMBDAS,
+                   kernel_max_frames: int = KERNEL_MAX_FRAMES) -> Correction:
+    """Fit per-joint corrections with participant-grouped cross-validation.
+
+    Candidates per joint: linear ridge at each of ``lambdas``, and (with at most
+    ``kernel_max_frames`` frames) kernel ridge at each of ``gammas`` x
+    ``kernel_lambdas``; ``gammas=()`` leaves only the linear ones. The kernel's
+    features are standardised once over every labelled frame, as the final fit
+    is (unlabelled feature statistics only; residuals never enter it).
 
     Scored by what labelling cares about: the held-out mean per-keypoint OKS
     similarity exp(-d² / (2 s² k²)) (k = 2σ, s² = area, as pycocotools). A
@@ -298,6 +371,16 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
                                    f"least 2 participants")}
         return corr
     var = (2 * np.asarray(sigmas, float)) ** 2
+    support = Support.of(s.X)
+    d2_all = None
+    if gammas and N <= kernel_max_frames:
+        # the kernel's distances, on the features standardised over every labelled frame (the
+        # final fit's standardisation; features only, no residual enters it)
+        zs = support.points.astype(np.float64)
+        d2_all = sq_distances(zs, zs) / max(zs.shape[1], 1)
+    cands = [("linear", lam, None) for lam in lambdas]
+    if d2_all is not None:
+        cands += [("rbf", lam, g) for g in gammas for lam in kernel_lambdas]
     for j in range(K):
         ok = np.isfinite(s.R[:, j]).all(axis=1)
         if ok.sum() < min_frames:
@@ -311,11 +394,13 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
         best = None
         tried = []
         for trim in trims:
-            train_ok = ok & (rn <= max(trim * med, 1e-9))
+            # no trim keeps every frame, even when most labels are the proposal itself (median
+            # residual 0, where inf * 0 would be NaN and keep none)
+            train_ok = ok & (rn <= max(trim * med, 1e-9)) if np.isfinite(trim) else ok.copy()
             if any(np.array_equal(train_ok, t) for t in tried):
                 continue        # this trim keeps the same frames as one already tried
             tried.append(train_ok)
-            diffs = [[] for _ in lambdas]
+            diffs = [[] for _ in cands]
             raws = []
             for test in folds:
                 tr, te = train_ok & ~test, ok & test     # scored on every held-out frame
@@ -325,17 +410,30 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
                 raws.append(r0)
                 for i, m in enumerate(ridge_path(s.X[tr], s.R[tr, j], lambdas)):
                     diffs[i].append(sim(s.R[te, j] - ridge_predict(m, s.X[te]), te) - r0)
+                if d2_all is not None:
+                    d2_tr = d2_all[np.ix_(tr, tr)]
+                    d2_te = d2_all[np.ix_(te, tr)]
+                    i = len(lambdas)
+                    for g in gammas:
+                        k_tr, k_te = np.exp(-g * d2_tr), np.exp(-g * d2_te)
+                        for lam in kernel_lambdas:
+                            alpha, ym = kernel_ridge_fit(k_tr, s.R[tr, j], lam)
+                            diffs[i].append(sim(s.R[te, j] - (k_te @ alpha + ym), te) - r0)
+                            i += 1
             if not raws:
                 continue
             r0 = np.concatenate(raws)
-            for lam, dl in zip(lambdas, diffs):
+            for cand, dl in zip(cands, diffs):
                 d = np.concatenate(dl)
                 if best is None or d.mean() > best[1].mean():
-                    best = (lam, d, r0, train_ok, trim)
+                    best = (cand, d, r0, train_ok, trim)
         if best is None:
             continue
-        lam, d, r0, train_ok, trim = best
+        (kind, lam, gamma), d, r0, train_ok, trim = best
         corr.lam[j] = lam
+        corr.kind[j] = kind
+        if gamma is not None:
+            corr.gamma[j] = gamma
         corr.trim[j] = trim
         corr.heldout_raw[j] = float(r0.mean())
         corr.heldout_adapted[j] = float(r0.mean() + d.mean())
@@ -344,12 +442,21 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
         t = d.mean() / (d.std(ddof=1) / np.sqrt(len(d))) if len(d) > 2 and d.std() > 0 else 0.0
         if d.mean() > 0 and t > MIN_T:
             corr.use[j] = True
-            corr.models[j] = ridge_fit(s.X[train_ok], s.R[train_ok, j], lam)
+            if kind == "rbf":
+                # on the support's own (stored, rounded) points, so the correction predicts the
+                # same before and after it is saved
+                rows = np.flatnonzero(train_ok)
+                zs = support.points[rows].astype(np.float64)
+                alpha, ym = kernel_ridge_fit(rbf_kernel(zs, zs, gamma), s.R[train_ok, j], lam)
+                corr.models[j] = ("rbf", float(gamma), rows, alpha, ym)
+            else:
+                corr.models[j] = ridge_fit(s.X[train_ok], s.R[train_ok, j], lam)
     if corr.active:
-        corr.support = Support.of(s.X)
+        corr.support = support
     raw = list(corr.heldout_raw.values())
     corr.summary = {"frames": int(N), "participants": int(len(set(s.groups.tolist()))),
                     "joints_corrected": int(corr.use.sum()),
+                    "joints_kernel": int(sum(corr.kind.get(int(j)) == "rbf" for j in np.flatnonzero(corr.use))),
                     "heldout_similarity_raw": float(np.mean(raw)) if raw else float("nan"),
                     "heldout_similarity_adapted": float(np.mean(
                         [corr.heldout_adapted[j] if corr.use[j] else corr.heldout_raw[j]
@@ -503,7 +610,9 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
     changed, outside = reapply(project, corr, user_id=who.id) if corr.active else ((), 0)
     names = [project.skeleton.keypoints[j] for j in np.flatnonzero(corr.use)]
     if corr.active:
-        msg = (f"adapted {len(names)} of {K} joints from {s.R.shape[0]} labelled frames "
+        n_kernel = sum(corr.kind.get(int(j)) == "rbf" for j in np.flatnonzero(corr.use))
+        msg = (f"adapted {len(names)} of {K} joints ({n_kernel} by kernel ridge, the others linear) "
+               f"from {s.R.shape[0]} labelled frames "
                f"({corr.summary['participants']} participants); mean keypoint similarity on held-out "
                f"participants {corr.summary['heldout_similarity_raw']:.3f} raw -> "
                f"{corr.summary['heldout_similarity_adapted']:.3f} adapted; re-proposed {len(changed)} "

@@ -204,3 +204,70 @@ def test_the_regression_heads_points_let_the_correction_follow_where_they_disagr
     assert np.hypot(*(out[13, :2] - truth[13, :2])) < 0.5 * np.hypot(*(prop.keypoints[13, :2] - truth[13, :2]))
     raw, raw_src = apply_to(back, prop.keypoints, prop.confidence, None, reg, ["model"] * 17, None)
     assert np.array_equal(raw, prop.keypoints) and set(raw_src) == {"model"}
+
+
+def _bent_knee(seed, groups, n_per=30):
+    """Invented test data with an error that is not linear in the proposal: the knee (joint 13)
+    is proposed too high by an amount that grows with the square of feature 0 (say, how bent
+    the leg is), so its mean over frames is far from zero at both ends and zero in the middle."""
+    s = _synthetic(n_per=n_per, seed=seed, groups=groups, offset=(0.0, 0.0), noise=0.003)
+    rng = np.random.default_rng(seed + 50)
+    bend = rng.uniform(-1, 1, len(s.X))
+    # as with real poses, the features move together: here along one direction with the bend
+    s.X[:] = np.outer(bend, np.random.default_rng(99).normal(0, 0.3, s.X.shape[1])) + \
+        rng.normal(0, 0.01, s.X.shape)
+    s.R[:, 13, 1] += 0.2 * bend ** 2 - 0.07
+    return s
+
+
+def test_kernel_ridge_learns_an_error_that_is_not_linear_in_the_proposal():
+    """Kernel ridge (Saunders et al. 1998) can fit a quadratic dependence that no linear map of
+    the features can; cross-validation picks it for that joint and it carries over to new people."""
+    train = _bent_knee(1, ("A", "B", "C", "D", "E"))
+    test = _bent_knee(2, ("F", "G"))
+    linear = fit_correction(train, SIG, gammas=())
+    both = fit_correction(train, SIG)
+    assert both.use[13] and both.kind[13] == "rbf"
+    err = lambda c: np.abs(test.R[:, 13, 1] - c.predict_residual(test.X, 17)[:, 13, 1]).mean()  # noqa: E731
+    raw = np.abs(test.R[:, 13, 1]).mean()
+    assert err(both) < 0.5 * err(linear) and err(both) < 0.3 * raw
+    # saved and loaded, the kernel correction predicts the same
+    back = Correction.from_json(both.to_json())
+    np.testing.assert_allclose(back.predict_residual(test.X, 17), both.predict_residual(test.X, 17),
+                               atol=1e-9)
+    assert back.kind == both.kind and back.gamma == both.gamma
+
+
+def test_kernel_ridge_dual_solution_matches_the_closed_form():
+    """The dual kernel ridge fit equals the textbook solution alpha = (K + lam I)^-1 (y - mean),
+    and with a linear kernel its predictions equal primal ridge on centred features (the
+    identity W = Z^T alpha of Saunders et al. 1998)."""
+    from kinemark.core.adapt import kernel_ridge_fit, rbf_kernel
+    rng = np.random.default_rng(4)
+    Z = rng.normal(size=(30, 5))
+    Z -= Z.mean(axis=0)
+    Y = rng.normal(size=(30, 2))
+    alpha, ym = kernel_ridge_fit(Z @ Z.T, Y, 0.7)
+    W = np.linalg.solve(Z.T @ Z + 0.7 * np.eye(5), Z.T @ (Y - Y.mean(axis=0)))
+    np.testing.assert_allclose(Z @ Z.T @ alpha, Z @ W, atol=1e-10)
+    np.testing.assert_allclose(ym, Y.mean(axis=0))
+    K = rbf_kernel(Z, Z, 0.5)
+    d2 = ((Z[:, None] - Z[None]) ** 2).sum(-1)
+    np.testing.assert_allclose(K, np.exp(-0.5 * d2 / 5), atol=1e-12)
+
+
+def test_no_trim_keeps_every_frame_even_when_most_labels_are_the_proposal():
+    """When the annotator kept most proposed points as they were (residual exactly 0 on most
+    frames, as the simulated annotator does), the median residual is 0; the untrimmed fit must
+    still see the frames where the point was moved, and learn their offset."""
+    train = _synthetic(seed=11, groups=("A", "B", "C", "D", "E"), offset=(0.0, 0.0), noise=0.0)
+    test = _synthetic(seed=12, groups=("F", "G"), offset=(0.0, 0.0), noise=0.0)
+    for s in (train, test):
+        moved = s.X[:, 0] > 0.15                 # about a third of the frames
+        s.R[:, 9] = 0.0
+        s.R[moved, 9] = (0.05, 0.0)
+    corr = fit_correction(train, SIG, trims=(float("inf"),), gammas=())
+    assert corr.use[9]
+    pred = corr.predict_residual(test.X, 17)[:, 9, 0]
+    moved = test.X[:, 0] > 0.15
+    assert pred[moved].mean() > pred[~moved].mean() + 0.01
