@@ -43,8 +43,9 @@ MIN_T = 2.0
 # gammas and penalties (a project choice, measured on the demo data: see DEVELOPERS.md)
 GAMMAS = (0.03, 0.1, 0.3, 1.0)
 KERNEL_LAMBDAS = (0.01, 0.1, 1.0, 10.0)
-# the kernel candidates solve an n x n system per candidate and fold: above this many labelled
-# frames only linear ridge is tried (a project choice, to keep a refit within seconds)
+# the kernel candidates need an n x n eigendecomposition per fold and gamma: above this many
+# labelled frames only linear ridge is tried (a project choice, to keep a refit within seconds:
+# about 5 s at 783 frames on the 2-core development machine)
 KERNEL_MAX_FRAMES = 800
 # a frame is corrected only within this many times the widest nearest-neighbour gap among
 # the labelled frames (in standardised feature space): a project choice, see Support
@@ -336,6 +337,47 @@ def _model_from_json(m):
     return tuple(np.array(a) for a in m)
 
 
+def _joint_sim(res: np.ndarray, area: np.ndarray, var_j: float) -> np.ndarray:
+    """Per-frame OKS similarity of one joint's residuals (var_j = (2 sigma)^2, area = s^2)."""
+    return np.exp(-(res ** 2).sum(axis=1) / var_j / (area + np.spacing(1)) / 2)
+
+
+def _kernel_cv(s: Samples, folds, d2_all: np.ndarray, gammas, lambdas, var) -> dict:
+    """Held-out similarity gains of the kernel ridge candidates, per joint.
+
+    Returns joint -> one list per candidate (gamma-major, then lambda) of per-fold arrays
+    of (corrected - raw) similarity, on every frame where the joint has a residual
+    (untrimmed), folds skipped as :func:`fit_correction` skips them. Joints with the same
+    labelled frames share one eigendecomposition of the kernel per fold and gamma, which
+    serves every penalty: (K + lam I)^-1 = U (E + lam)^-1 U^T.
+    """
+    N, K, _ = s.R.shape
+    ok_all = np.isfinite(s.R).all(axis=2)
+    out = {j: [[] for _ in range(len(gammas) * len(lambdas))] for j in range(K)}
+    for test in folds:
+        for gi, g in enumerate(gammas):
+            k_full = np.exp(-g * d2_all)
+            cache: dict = {}
+            for j in range(K):
+                ok = ok_all[:, j]
+                tr, te = ok & ~test, ok & test
+                if tr.sum() < 3 or te.sum() == 0:
+                    continue
+                key = ok.tobytes()
+                if key not in cache:
+                    e, U = np.linalg.eigh(k_full[np.ix_(tr, tr)])
+                    cache[key] = (np.maximum(e, 0.0), U, k_full[np.ix_(te, tr)])
+                e, U, k_te = cache[key]
+                Y = s.R[tr, j]
+                ym = Y.mean(axis=0)
+                P = U.T @ (Y - ym)
+                r0 = _joint_sim(s.R[te, j], s.area[te], var[j])
+                for li, lam in enumerate(lambdas):
+                    pred = k_te @ (U @ (P / (e + lam)[:, None])) + ym
+                    out[j][gi * len(lambdas) + li].append(_joint_sim(s.R[te, j] - pred, s.area[te], var[j]) - r0)
+    return out
+
+
 def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
                    lambdas=LAMBDAS, min_frames: int = MIN_FRAMES, trims=TRIMS,
                    gammas=GAMMAS, kernel_lambdas=KERNEL_LAMBDAS,
@@ -361,6 +403,7 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
     beforehand, so the trim is a second hyperparameter, chosen with the
     regularisation by the same participant-grouped cross-validation: each of
     ``trims`` (multiples of the joint's median residual; ``inf`` is no trim).
+    Kernel candidates are scored on the untrimmed frames only (:func:`_kernel_cv`).
     """
     N, K, _ = s.R.shape
     folds = _folds(s.groups)
@@ -379,8 +422,8 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
         zs = support.points.astype(np.float64)
         d2_all = sq_distances(zs, zs) / max(zs.shape[1], 1)
     cands = [("linear", lam, None) for lam in lambdas]
-    if d2_all is not None:
-        cands += [("rbf", lam, g) for g in gammas for lam in kernel_lambdas]
+    kernel_cands = [("rbf", lam, g) for g in gammas for lam in kernel_lambdas]
+    kernel_cv = _kernel_cv(s, folds, d2_all, gammas, kernel_lambdas, var) if d2_all is not None else {}
     for j in range(K):
         ok = np.isfinite(s.R[:, j]).all(axis=1)
         if ok.sum() < min_frames:
@@ -389,8 +432,7 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
         med = float(np.median(rn[ok]))
 
         def sim(res, idx):
-            d2 = (res ** 2).sum(axis=1)
-            return np.exp(-d2 / var[j] / (s.area[idx] + np.spacing(1)) / 2)
+            return _joint_sim(res, s.area[idx], var[j])
         best = None
         tried = []
         for trim in trims:
@@ -410,20 +452,17 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
                 raws.append(r0)
                 for i, m in enumerate(ridge_path(s.X[tr], s.R[tr, j], lambdas)):
                     diffs[i].append(sim(s.R[te, j] - ridge_predict(m, s.X[te]), te) - r0)
-                if d2_all is not None:
-                    d2_tr = d2_all[np.ix_(tr, tr)]
-                    d2_te = d2_all[np.ix_(te, tr)]
-                    i = len(lambdas)
-                    for g in gammas:
-                        k_tr, k_te = np.exp(-g * d2_tr), np.exp(-g * d2_te)
-                        for lam in kernel_lambdas:
-                            alpha, ym = kernel_ridge_fit(k_tr, s.R[tr, j], lam)
-                            diffs[i].append(sim(s.R[te, j] - (k_te @ alpha + ym), te) - r0)
-                            i += 1
             if not raws:
                 continue
             r0 = np.concatenate(raws)
-            for cand, dl in zip(cands, diffs):
+            round_cands = list(cands)
+            if j in kernel_cv and np.array_equal(train_ok, ok):
+                # the kernel candidates were scored on the untrimmed frames, fold by fold as here
+                round_cands += kernel_cands
+                diffs = diffs + kernel_cv[j]
+            for cand, dl in zip(round_cands, diffs):
+                if not dl:
+                    continue
                 d = np.concatenate(dl)
                 if best is None or d.mean() > best[1].mean():
                     best = (cand, d, r0, train_ok, trim)
