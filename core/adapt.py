@@ -43,6 +43,11 @@ MIN_T = 2.0
 # gammas and penalties (a project choice, measured on the demo data: see DEVELOPERS.md)
 GAMMAS = (0.03, 0.1, 0.3, 1.0)
 KERNEL_LAMBDAS = (0.01, 0.1, 1.0, 10.0)
+# the kernel's views of the features, each a candidate chosen per joint by cross-validation:
+# every feature, or the pose alone (every joint's crop x, y: the first 2K columns, see
+# features()). An isotropic kernel weighs every feature alike, so with few labelled frames the
+# appearance embedding and the confidences can drown the pose in distance
+KERNEL_VIEWS = ("all", "pose")
 # the kernel candidates need an n x n eigendecomposition per fold and gamma: above this many
 # labelled frames only linear ridge is tried (a project choice, to keep a refit within seconds:
 # about 5 s at 783 frames on the 2-core development machine)
@@ -121,6 +126,11 @@ def sq_distances(A: np.ndarray, B: np.ndarray) -> np.ndarray:
 def rbf_kernel(A: np.ndarray, B: np.ndarray, gamma: float) -> np.ndarray:
     """Gaussian kernel exp(-gamma |a - b|^2 / F) between the rows of A and B (F columns)."""
     return np.exp(-gamma * sq_distances(A, B) / max(A.shape[1], 1))
+
+
+def _view_columns(view: str, n_features: int, K: int) -> slice:
+    """Columns of the feature row a kernel view uses (see :data:`KERNEL_VIEWS`)."""
+    return slice(0, min(2 * K, n_features)) if view == "pose" else slice(0, n_features)
 
 
 def kernel_ridge_fit(Kmat: np.ndarray, Y: np.ndarray, lam: float):
@@ -242,8 +252,8 @@ class Correction:
 
     model_hash: str
     use: np.ndarray                 # (K,) bool: joints whose correction beat the raw model
-    # joint -> linear (mu, sd, W, b), or kernel ("rbf", gamma, rows, alpha, b): rows index the
-    # support's points, the kernel's training frames
+    # joint -> linear (mu, sd, W, b), or kernel ("rbf", gamma, rows, alpha, b, view): rows index
+    # the support's points, the kernel's training frames; view names their columns
     models: dict = field(default_factory=dict)
     lam: dict = field(default_factory=dict)
     trim: dict = field(default_factory=dict)      # joint -> the training trim chosen (inf: none)
@@ -273,17 +283,21 @@ class Correction:
         out = np.zeros((len(X), K, 2))
         if inside is None:
             inside = self.covers(X)
-        d2 = None
+        d2: dict = {}
+        Z = None
         for j, m in self.models.items():
             if not self.use[j] or not inside.any():
                 continue
             if _is_kernel(m):
-                _, gamma, rows, alpha, b = m
-                if d2 is None:   # one distance matrix serves every kernel joint
-                    sup = self.support
+                _, gamma, rows, alpha, b, view = m
+                sup = self.support
+                if Z is None:
                     Z = (np.asarray(X[inside], float) - sup.mu) / sup.sd
-                    d2 = sq_distances(Z, sup.points.astype(np.float64)) / max(Z.shape[1], 1)
-                out[inside, j] = np.exp(-gamma * d2[:, rows]) @ alpha + b
+                if view not in d2:   # one distance matrix per view serves every kernel joint
+                    c = _view_columns(view, Z.shape[1], K)
+                    zc = Z[:, c]
+                    d2[view] = sq_distances(zc, sup.points[:, c].astype(np.float64)) / max(zc.shape[1], 1)
+                out[inside, j] = np.exp(-gamma * d2[view][:, rows]) @ alpha + b
             else:
                 out[inside, j] = ridge_predict(m, X[inside])
         return out
@@ -296,7 +310,7 @@ class Correction:
                                                  "radius": sup.radius},
             "model_hash": self.model_hash, "use": self.use.astype(int).tolist(),
             "models": {str(j): ({"kind": "rbf", "gamma": m[1], "rows": np.asarray(m[2]).tolist(),
-                                 "alpha": m[3].tolist(), "b": m[4].tolist()} if _is_kernel(m)
+                                 "alpha": m[3].tolist(), "b": m[4].tolist(), "view": m[5]} if _is_kernel(m)
                                 else [a.tolist() for a in m]) for j, m in self.models.items()},
             "lam": {str(j): v for j, v in self.lam.items()},
             "trim": {str(j): (v if np.isfinite(v) else None) for j, v in self.trim.items()},
@@ -333,7 +347,7 @@ def _is_kernel(m) -> bool:
 def _model_from_json(m):
     if isinstance(m, dict):
         return ("rbf", float(m["gamma"]), np.array(m["rows"], dtype=int), np.array(m["alpha"], float),
-                np.array(m["b"], float))
+                np.array(m["b"], float), str(m.get("view", "all")))
     return tuple(np.array(a) for a in m)
 
 
@@ -380,13 +394,14 @@ def _kernel_cv(s: Samples, folds, d2_all: np.ndarray, gammas, lambdas, var) -> d
 
 def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
                    lambdas=LAMBDAS, min_frames: int = MIN_FRAMES, trims=TRIMS,
-                   gammas=GAMMAS, kernel_lambdas=KERNEL_LAMBDAS,
+                   gammas=GAMMAS, kernel_lambdas=KERNEL_LAMBDAS, views=KERNEL_VIEWS,
                    kernel_max_frames: int = KERNEL_MAX_FRAMES) -> Correction:
     """Fit per-joint corrections with participant-grouped cross-validation.
 
     Candidates per joint: linear ridge at each of ``lambdas``, and (with at most
     ``kernel_max_frames`` frames) kernel ridge at each of ``gammas`` x
-    ``kernel_lambdas``; ``gammas=()`` leaves only the linear ones. The kernel's
+    ``kernel_lambdas`` on each of ``views`` (:data:`KERNEL_VIEWS`); ``gammas=()``
+    leaves only the linear ones. The kernel's
     features are standardised once over every labelled frame, as the final fit
     is (unlabelled feature statistics only; residuals never enter it).
 
@@ -415,15 +430,19 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
         return corr
     var = (2 * np.asarray(sigmas, float)) ** 2
     support = Support.of(s.X)
-    d2_all = None
+    cands = [("linear", lam, None, None) for lam in lambdas]
+    kernel_cands: list = []
+    kernel_cv: dict = {}
     if gammas and N <= kernel_max_frames:
-        # the kernel's distances, on the features standardised over every labelled frame (the
-        # final fit's standardisation; features only, no residual enters it)
+        # the kernel's distances, per view, on the features standardised over every labelled
+        # frame (the final fit's standardisation; features only, no residual enters it)
         zs = support.points.astype(np.float64)
-        d2_all = sq_distances(zs, zs) / max(zs.shape[1], 1)
-    cands = [("linear", lam, None) for lam in lambdas]
-    kernel_cands = [("rbf", lam, g) for g in gammas for lam in kernel_lambdas]
-    kernel_cv = _kernel_cv(s, folds, d2_all, gammas, kernel_lambdas, var) if d2_all is not None else {}
+        for view in views:
+            c = _view_columns(view, zs.shape[1], K)
+            d2 = sq_distances(zs[:, c], zs[:, c]) / max(zs[:, c].shape[1], 1)
+            kernel_cands += [("rbf", lam, g, view) for g in gammas for lam in kernel_lambdas]
+            for j, lists in _kernel_cv(s, folds, d2, gammas, kernel_lambdas, var).items():
+                kernel_cv.setdefault(j, []).extend(lists)
     for j in range(K):
         ok = np.isfinite(s.R[:, j]).all(axis=1)
         if ok.sum() < min_frames:
@@ -468,7 +487,7 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
                     best = (cand, d, r0, train_ok, trim)
         if best is None:
             continue
-        (kind, lam, gamma), d, r0, train_ok, trim = best
+        (kind, lam, gamma, view), d, r0, train_ok, trim = best
         corr.lam[j] = lam
         corr.kind[j] = kind
         if gamma is not None:
@@ -485,9 +504,9 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
                 # on the support's own (stored, rounded) points, so the correction predicts the
                 # same before and after it is saved
                 rows = np.flatnonzero(train_ok)
-                zs = support.points[rows].astype(np.float64)
+                zs = support.points[rows][:, _view_columns(view, s.X.shape[1], K)].astype(np.float64)
                 alpha, ym = kernel_ridge_fit(rbf_kernel(zs, zs, gamma), s.R[train_ok, j], lam)
-                corr.models[j] = ("rbf", float(gamma), rows, alpha, ym)
+                corr.models[j] = ("rbf", float(gamma), rows, alpha, ym, view)
             else:
                 corr.models[j] = ridge_fit(s.X[train_ok], s.R[train_ok, j], lam)
     if corr.active:

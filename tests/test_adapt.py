@@ -296,3 +296,21 @@ def test_kernel_cross_validation_with_a_shared_decomposition_matches_direct_solv
                     want = _joint_sim(s.R[te, j] - pred, s.area[te], var[j]) - _joint_sim(s.R[te, j], s.area[te], var[j])
                     np.testing.assert_allclose(got[j][c][f], want, atol=1e-9)
                 c += 1
+
+
+def test_kernel_on_the_pose_alone_when_other_features_are_noise():
+    """An isotropic kernel weighs every feature alike; when the appearance features carry
+    nothing about the error, the pose-only view (the first 2K columns, every joint's crop
+    x, y) is what cross-validation picks, and it predicts better than the all-feature view."""
+    def noisy(seed, groups):
+        s = _bent_knee(seed, groups)
+        extra = np.random.default_rng(seed + 7).normal(size=(len(s.X), 80))   # an uninformative embedding
+        return Samples(np.hstack([s.X, extra]), s.R, s.groups, s.area, s.vis)
+    train, test = noisy(1, ("A", "B", "C", "D", "E")), noisy(2, ("F", "G"))
+    both = fit_correction(train, SIG)
+    only_all = fit_correction(train, SIG, views=("all",))
+    assert both.use[13] and both.kind[13] == "rbf" and both.models[13][5] == "pose"
+    err = lambda c: np.abs(test.R[:, 13, 1] - c.predict_residual(test.X, 17)[:, 13, 1]).mean()  # noqa: E731
+    assert err(both) < 0.7 * err(only_all)
+    back = Correction.from_json(both.to_json())
+    np.testing.assert_allclose(back.predict_residual(test.X, 17), both.predict_residual(test.X, 17), atol=1e-9)
