@@ -9,10 +9,10 @@ anywhere in the frame. Each joint's regression is either linear ridge
 regression (Hoerl & Kennard, "Ridge Regression: Biased Estimation for
 Nonorthogonal Problems", Technometrics 1970) or kernel ridge regression with a
 Gaussian (RBF) kernel (Saunders, Gammerman & Vovk, "Ridge Regression Learning
-Algorithm in Dual Variables", ICML 1998), whichever the cross-validation
-below scores higher: the model's errors on a new population are often not
-linear in its own output (a knee that is placed too high only when the leg is
-bent, say).
+Algorithm in Dual Variables", ICML 1998) on all features or on the pose
+alone, whichever the cross-validation below scores higher: the model's errors
+on a new population are often not linear in its own output (a knee that is
+placed too high only when the leg is bent, say).
 
 The regularisation is chosen by cross-validation grouped by participant
 (leave-one-participant-out when there are enough participants), scored by
