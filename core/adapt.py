@@ -669,7 +669,7 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
     names = [project.skeleton.keypoints[j] for j in np.flatnonzero(corr.use)]
     if corr.active:
         n_kernel = sum(corr.kind.get(int(j)) == "rbf" for j in np.flatnonzero(corr.use))
-        msg = (f"adapted {len(names)} of {K} joints ({n_kernel} by kernel ridge, the others linear) "
+        msg = (f"adapted {len(names)} of {K} joints ({n_kernel} by kernel ridge, {len(names) - n_kernel} linear) "
                f"from {s.R.shape[0]} labelled frames "
                f"({corr.summary['participants']} participants); mean keypoint similarity on held-out "
                f"participants {corr.summary['heldout_similarity_raw']:.3f} raw -> "
