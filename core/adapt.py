@@ -48,9 +48,9 @@ KERNEL_LAMBDAS = (0.01, 0.1, 1.0, 10.0)
 # features()). An isotropic kernel weighs every feature alike, so with few labelled frames the
 # appearance embedding and the confidences can drown the pose in distance
 KERNEL_VIEWS = ("all", "pose")
-# the kernel candidates need an n x n eigendecomposition per fold and gamma: above this many
-# labelled frames only linear ridge is tried (a project choice, to keep a refit within seconds:
-# about 5 s at 783 frames on the 2-core development machine)
+# the kernel candidates need an n x n eigendecomposition per fold, gamma and view: above this
+# many labelled frames only linear ridge is tried (a project choice, to keep a refit within
+# seconds: about 6.4 s at 783 frames on the 2-core development machine)
 KERNEL_MAX_FRAMES = 800
 # a frame is corrected only within this many times the widest nearest-neighbour gap among
 # the labelled frames (in standardised feature space): a project choice, see Support
