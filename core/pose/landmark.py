@@ -379,11 +379,9 @@ class LandmarkAdapter(PoseAdapter):
         used = self._map[self._covered]
         both = np.union1d(used, MODEL_FLIP_PERMUTATION[used])
         self._heat_channels = both[both < NUM_BODY].astype(int)
-        # where the skeleton's channels sit among them (for the entropy), if all do
-        rows = np.searchsorted(self._heat_channels, used)
-        fits = bool(np.all(rows < len(self._heat_channels))) and \
-            bool(np.array_equal(self._heat_channels[np.minimum(rows, len(self._heat_channels) - 1)], used))
-        self._entropy_rows = rows if fits and len(used) else None
+        # where the skeleton's channels sit among them (for the entropy); every used body point
+        # is among them by construction, so only a skeleton using an auxiliary point has none
+        self._entropy_rows = np.searchsorted(self._heat_channels, used) if np.all(used < NUM_BODY) else None
 
         self.model_path = self._resolve_path(model_path)
         data = self._read_bytes(self.model_path)
