@@ -102,9 +102,9 @@ def _reviewer(root, name, seconds, out_q):
 
 def run(dsn: str | None = None, *, seconds: float = 60.0, annotators: int = 6, reviewers: int = 2,
         frames: int = 3000, say=print):
-    import psycopg
     from .project import Project
     from .skeleton import COCO17
+    from .store import drop_postgres_project
     dsn = dsn or os.environ.get("KINEMARK_TEST_PG")
     if not dsn:
         say("bench team: needs a PostgreSQL server: pass --db or set KINEMARK_TEST_PG "
@@ -177,8 +177,4 @@ def run(dsn: str | None = None, *, seconds: float = 60.0, annotators: int = 6, r
         return {"double": double, "lost": lost, "conflicts": conflicts, "rate": ops_done / wall}
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
-        try:
-            with psycopg.connect(dsn, autocommit=True) as c:
-                c.execute(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE')
-        except Exception:
-            pass
+        drop_postgres_project(dsn, schema)

@@ -294,6 +294,24 @@ def _pg_schema_name(name: str) -> str:
     return name
 
 
+def drop_postgres_project(dsn: str, schema: str) -> bool:
+    """Remove a team project's schema (and every table in it) from the server.
+
+    For throwaway projects (benchmarks, tests): a real study's schema is never dropped by
+    Kinemark itself. Returns False when the server cannot be reached; the name is checked as
+    for :meth:`Store.postgres`, so nothing but a project schema name reaches the statement.
+    """
+    if psycopg is None:
+        return False
+    schema = _pg_schema_name(schema)
+    try:
+        with psycopg.connect(dsn, autocommit=True, connect_timeout=10) as c:
+            c.execute(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE')
+    except psycopg.Error:
+        return False
+    return True
+
+
 def check_dsn_has_no_password(dsn: str):
     """A connection string that is stored in the project folder must carry no password."""
     if psycopg is None:

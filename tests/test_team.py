@@ -17,7 +17,7 @@ from kinemark.core.errors import KinemarkError
 from kinemark.core.model import ACCEPTED, IN_REVIEW
 from kinemark.core.project import TEAM_FILE, Project
 from kinemark.core.skeleton import COCO17
-from kinemark.core.store import check_dsn_has_no_password, schema_version
+from kinemark.core.store import check_dsn_has_no_password, drop_postgres_project, schema_version
 
 K = 17
 DSN = os.environ.get("KINEMARK_TEST_PG")
@@ -38,13 +38,11 @@ def _schema():
 
 @pytest.fixture
 def team(tmp_path, dsn):
-    import psycopg
     schema = _schema()
     p = Project.create(tmp_path / "team", COCO17, owner="lead", db=dsn, schema=schema)
     yield p
     p.close()
-    with psycopg.connect(dsn, autocommit=True) as c:
-        c.execute(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE')
+    assert drop_postgres_project(dsn, schema)
 
 
 def _frames(p, n):
@@ -77,6 +75,19 @@ def test_same_schema_and_migrations_on_postgres(team, tmp_path):
     again = Project.open(team.root)
     assert again.user().name == "lead" and again.skeleton == COCO17
     again.close()
+
+
+def test_dropping_a_throwaway_team_project_removes_its_schema(tmp_path, dsn):
+    from kinemark.core.store import Store
+    schema = _schema()
+    Project.create(tmp_path / "tmp", COCO17, owner="lead", db=dsn, schema=schema).close()
+    Store.postgres(dsn, schema).close()                     # it is there
+    assert drop_postgres_project(dsn, schema)
+    with pytest.raises(KinemarkError, match="no project schema"):
+        Store.postgres(dsn, schema)
+    # only a project schema name ever reaches the statement
+    with pytest.raises(KinemarkError, match="schema name"):
+        drop_postgres_project(dsn, 'x"; DROP SCHEMA public CASCADE; --')
 
 
 def test_event_log_append_only_on_postgres(team):
