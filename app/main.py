@@ -168,6 +168,8 @@ class MainWindow(QMainWindow):
         self._live = None          # core.ranking.LiveQueue behind Up next, once ranked
         self.user_role: str | None = None
         self.undo = QUndoStack(self)
+        self._goes = 0                 # frame changes so far (see _start_at_queue_top)
+        self._to_queue_top = None
         self.background = Background(self)
         self.frames = FrameWorker()
         self.frames.thumbnail.connect(self._on_thumbnail, Qt.QueuedConnection)
@@ -472,10 +474,16 @@ class MainWindow(QMainWindow):
             start = int(last) if last is not None else None
         except (TypeError, ValueError):
             start = None
-        if start not in self.frame_by_id:
+        first_visit = start not in self.frame_by_id
+        if first_visit:
             start = self.order[0] if self.order else None
+        self._to_queue_top = None
         if start is not None:
             self.go(start)
+            if first_visit:
+                # nothing remembered for this project: once Up next is ranked, start at its top
+                # (unless the person has moved on or edited by then)
+                self._to_queue_top = self._goes
         else:
             self.canvas.set_image(None, "No frames yet: drop videos or image folders here to add them.")
             self._update_frameline()
@@ -626,6 +634,7 @@ class MainWindow(QMainWindow):
         self.canvas.cancel_drag()
         f = self.frame_by_id[frame_id]
         self.frame_id = frame_id
+        self._goes += 1
         image = self.frames.take(frame_id)
         self.last_from_ahead = image is not None
         if image is None:                        # not decoded ahead: the worker decodes it first
@@ -1213,6 +1222,7 @@ class MainWindow(QMainWindow):
                 live = None
             self._live = live
             self._show_queue(entries, note)
+            self._start_at_queue_top(entries)
 
         def bad(exc):
             self.queue.button.setEnabled(True)
@@ -1220,6 +1230,15 @@ class MainWindow(QMainWindow):
 
         self.background.run("Ranking frames", work, root=self.project.root, on_done=done, on_error=bad,
                             quiet=True)
+
+    def _start_at_queue_top(self, entries):
+        """On a first visit, go to the top of Up next, if the person is still where the window
+        opened: not moved, nothing edited, no point being dragged."""
+        mark, self._to_queue_top = getattr(self, "_to_queue_top", None), None
+        if (mark is None or mark != self._goes or self.undo.count() or self.canvas._drag is not None
+                or not entries or entries[0].frame_id not in self.frame_by_id):
+            return
+        self.go(entries[0].frame_id)
 
     def _fold_into_queue(self, frames):
         """New labels arrived: update Up next incrementally (core.ranking.LiveQueue)."""

@@ -167,6 +167,53 @@ def test_queue_click_goes_to_that_frame(window, qtbot):
     assert window.frame_id == int(lst.item(3).data(Qt.UserRole))
 
 
+def _uncertain_last_frame(project):
+    """Proposals on every frame of ``project``, the model far less sure on the last one."""
+    fids = sorted(f.id for f in project.store.frames())
+    rng = np.random.default_rng(0)
+    for i, fid in enumerate(fids):
+        k = np.column_stack([rng.uniform(10, 150, 17), rng.uniform(10, 110, 17), np.full(17, 2.0)])
+        unsure = i == len(fids) - 1
+        project.store.save_proposal(fid, model_id="m", model_hash="h", keypoints=k,
+                                    confidence=np.full(17, 0.2 if unsure else 0.95),
+                                    signals={"flip_disagreement": np.full(17, 0.5 if unsure else 0.01)},
+                                    score=0.9)
+    return fids
+
+
+def test_first_visit_starts_at_the_top_of_up_next(qtbot, clip_project, settings):
+    """A project opened for the first time starts on the frame Up next puts first, not on
+    the first frame of the first video (which need not be worth labelling)."""
+    fids = _uncertain_last_frame(clip_project)
+    from .conftest import open_window
+    w = open_window(qtbot, clip_project.root, settings)
+    qtbot.waitUntil(lambda: w.queue.list.count() > 0, timeout=10000)
+    assert w.queue.entries[0].frame_id == fids[-1] != w.order[0]
+    assert w.frame_id == fids[-1]
+    w.close()
+
+
+def test_no_jump_to_up_next_once_the_person_has_moved(qtbot, clip_project, settings, monkeypatch):
+    from kinemark.app.main import MainWindow
+    fids = _uncertain_last_frame(clip_project)
+    real = MainWindow.refresh_queue
+    moved = []
+
+    def moved_first(self):
+        # the person steps to another frame before the ranking comes back
+        if self.frame_id is not None and not moved:
+            moved.append(fids[1])
+            self.go(fids[1])
+        real(self)
+    monkeypatch.setattr(MainWindow, "refresh_queue", moved_first)
+    from .conftest import open_window
+    w = open_window(qtbot, clip_project.root, settings)
+    qtbot.waitUntil(lambda: w.queue.list.count() > 0, timeout=10000)
+    assert w.queue.entries[0].frame_id == fids[-1]
+    assert moved and w.frame_id == fids[1]
+    w.close()
+
+
 def test_queue_falls_back_to_media_order_when_ranking_fails(window, qtbot, monkeypatch):
     import kinemark.core.ranking as ranking
 
