@@ -158,8 +158,9 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
         raise KinemarkError(f"--workers must be between 1 and {cores} (this machine's cores), not {workers}: "
                             "each worker runs its own copy of the model")
     workers = int(workers)
+    own_threads = None          # ONNX Runtime threads of the sessions this call loads itself
     if adapter is None and make_adapter is None:
-        ort_threads = max(1, 2 // workers)
+        ort_threads = own_threads = max(1, 2 // workers)
         adapter = load_adapter(project, threads=ort_threads)   # fail early, clearly, if the model is bad
         if workers > 1:
             make_adapter = lambda: load_adapter(project, threads=ort_threads)  # noqa: E731
@@ -181,6 +182,10 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
     todo.sort(key=lambda f: (f.media_id, f.frame_index))
 
     shards = split_runs(todo, workers if make_adapter is not None else 1)
+    if len(shards) == 1 and own_threads is not None and own_threads < 2 and todo:
+        # too few frames to share among the workers: the one worker gets a session with the
+        # threads the others would have had, rather than running on a single thread
+        adapter = load_adapter(project, threads=2)
     cancel = cancel or threading.Event()
     threads = []
     if len(shards) == 1:

@@ -205,6 +205,23 @@ def test_two_workers_with_the_bundled_model(tmp_path):
         assert np.allclose(a, b, atol=0.05)   # one or two ONNX Runtime threads: same sums up to rounding
 
 
+@TWO_CORES
+def test_a_run_too_short_to_share_gets_both_threads(project, tmp_path, monkeypatch):
+    """``--workers 2`` on a few frames of one video: nothing to share, so the one worker
+    runs a 2-thread session instead of the 1-thread session each of two would have had."""
+    import kinemark.core.pose as pose
+    loaded = []
+
+    def fake_load(project, *, threads=2, **kw):
+        loaded.append(threads)
+        return PixelModel()
+    monkeypatch.setattr(pose, "load_adapter", fake_load)
+    ops.add_media(project, [write_video(tmp_path / "short.mp4", n_frames=8)], sampling=Sampling(every=2))
+    _, rep = prefill(project, workers=2)
+    assert rep.proposed == 4 and not rep.failed
+    assert loaded == [1, 2]           # loaded for two workers first, then again for one
+
+
 @pytest.mark.parametrize("workers", [0, -1, 10_000])
 def test_worker_count_outside_the_machine_is_refused(two_videos, workers):
     with pytest.raises(KinemarkError, match="--workers must be between 1 and"):
