@@ -39,6 +39,16 @@ from .skeleton import Skeleton
 LABELLED_STATES = (DRAFTING, IN_REVIEW, ACCEPTED, RETURNED)
 SIGNALS = ("flip_disagreement", "heatmap_entropy", "pass_disagreement", "low_confidence")
 
+# the smallest typical pool distance novelty is measured in (normalised pose units, torso
+# lengths): below it, distances are rounding, not pose (a project choice)
+MIN_NOVELTY_SCALE = 1e-3
+
+# a queued frame's pose is called "unlike" the labelled ones when its nearest labelled or
+# already-queued pose is at least this many typical pool distances away (the median distance
+# between two of the project's poses; see RankingQueue.select). A project choice: the reason
+# then depends on the frame and what came before it in the queue, never on the batch size
+UNLIKE_DISTANCE = 0.5
+
 
 @dataclass(frozen=True)
 class RankWeights:
@@ -281,7 +291,9 @@ class RankingQueue:
             sf = self.feats[sample]
             d = np.sqrt(np.maximum(np.einsum("ij,ij->i", sf, sf)[:, None] - 2 * sf @ sf.T
                                    + np.einsum("ij,ij->i", sf, sf)[None, :], 0))
-            scale = float(np.median(d[np.triu_indices(len(sf), 1)])) or 1.0
+            scale = float(np.median(d[np.triu_indices(len(sf), 1)]))
+            # a pool of (nearly) identical poses: rounding must not pass for a typical distance
+            scale = max(scale, MIN_NOVELTY_SCALE)
         else:
             scale = 1.0
         clip_count: dict = {}
@@ -318,9 +330,10 @@ def _joint_phrase(names: list[str]) -> str:
     return ", ".join(names[:-1]) + " and " + names[-1]
 
 
-def explain(joint_u: np.ndarray, names, uncertainty_pct: float, novelty_pct: float,
+def explain(joint_u: np.ndarray, names, uncertainty_pct: float, unlike: bool,
             has_labels: bool, clip_rank: int) -> tuple[str, ...]:
-    """Plain-words reasons for one queued frame."""
+    """Plain-words reasons for one queued frame. ``unlike``: its pose is far from every
+    labelled or already-queued pose (:data:`UNLIKE_DISTANCE`)."""
     reasons = []
     order = np.argsort(-joint_u)
     unsure = [names[j] for j in order[:3] if joint_u[j] >= 0.75]
@@ -328,7 +341,7 @@ def explain(joint_u: np.ndarray, names, uncertainty_pct: float, novelty_pct: flo
         reasons.append(f"model unsure about {_joint_phrase(unsure)}")
     elif uncertainty_pct >= 0.75:
         reasons.append("model less sure than usual across the body")
-    if novelty_pct >= 0.6:
+    if unlike:
         reasons.append("pose unlike any labelled frame" if has_labels else "pose unlike the others queued so far")
     if not reasons:
         reasons.append("adds coverage of this clip" if clip_rank == 0 else "fills a gap among queued frames")
@@ -423,14 +436,14 @@ class LiveQueue:
         entries: list[QueueEntry] = []
         if self.queue is not None:
             picks = self.queue.select(batch)
-            nov_vals = np.array([p[3] for p in picks])
-            nov_pct = _percentile_rank(nov_vals) if len(picks) > 1 else np.ones(len(picks))
+            # novelty is in units of novelty_cap typical pool distances (RankingQueue.select)
+            unlike_at = UNLIKE_DISTANCE / self.weights.novelty_cap
             seen_clip: dict = {}
-            for (i, score, u, nv), npct in zip(picks, nov_pct):
+            for i, score, u, nv in picks:
                 cr = seen_clip.get(self.media[i], 0)
                 seen_clip[self.media[i]] = cr + 1
                 reasons = explain(self.ju[i], skel.keypoints, self.unc_pct[i],
-                                  npct if nv > 0.05 else 0.0, bool(self.labelled), cr)
+                                  nv >= unlike_at, bool(self.labelled), cr)
                 entries.append(QueueEntry(self.pool[i], int(self.media[i]), int(self.index[i]),
                                           score, u, nv, reasons))
         if len(entries) < batch:

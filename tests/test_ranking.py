@@ -173,3 +173,80 @@ def test_clip_decay_discounts_uncertainty_not_novelty():
         return [p[0] for p in RankingQueue(X, u, media, index, RankWeights(**w)).select(40)]
     assert picks(uncertainty=0.0, same_clip_decay=0.35) == picks(uncertainty=0.0, same_clip_decay=0.0)
     assert picks(novelty=0.0, same_clip_decay=0.35) != picks(novelty=0.0, same_clip_decay=0.0)
+
+
+# ---- the queue's plain-words reasons, on a project -------------------------------------
+
+def _pose(rng, arms_up: bool, shift=0.0):
+    """A rough standing COCO-17 pose in a 160 x 120 frame (x, y, v); ``arms_up`` raises
+    both wrists and elbows above the head. Invented test geometry."""
+    xy = np.array([[80, 20], [77, 17], [83, 17], [74, 19], [86, 19], [70, 32], [90, 32],
+                   [66, 48], [94, 48], [64, 62], [96, 62], [74, 64], [86, 64], [73, 86],
+                   [87, 86], [73, 108], [87, 108]], float)
+    if arms_up:
+        xy[[7, 8, 9, 10]] = [[66, 18], [94, 18], [64, 4], [96, 4]]
+    xy[:, 0] += shift
+    return np.column_stack([xy + rng.normal(0, 0.3, xy.shape), np.full(17, 2.0)])
+
+
+def _reason_project(project, tmp_path):
+    """Ten frames of one video with proposals: frame 0 labelled (arms down), frames 1-8
+    arms down with a little jitter (frame 3 exactly the labelled pose), frame 9 arms up. The
+    model is unsure about the left wrist on frame 5 only."""
+    from conftest import write_video
+    from kinemark.core.media import Sampling
+    from kinemark.core.model import DRAFTING
+    from kinemark.core.ops import add_media
+    ch, _ = add_media(project, [write_video(tmp_path / "reach.mp4", n_frames=50)], sampling=Sampling(every=5))
+    fids = sorted(ch.frames)
+    assert len(fids) == 10
+    rng = np.random.default_rng(3)
+    base = _pose(rng, False)
+    for n, fid in enumerate(fids):
+        k = _pose(rng, True) if n == 9 else base.copy() if n == 3 else _pose(rng, False)
+        flip = np.full(17, 0.01)
+        conf = np.full(17, 0.95)
+        if n == 5:
+            flip[9], conf[9] = 0.6, 0.1          # left wrist (COCO index 9)
+        project.store.save_proposal(fid, model_id="m", model_hash="h", keypoints=k, confidence=conf,
+                                    signals={"flip_disagreement": flip}, score=0.9)
+    project.store.save_annotation(fids[0], base, ["human"] * 17, state=DRAFTING, action="save")
+    return fids
+
+
+def test_queue_reasons_name_the_unsure_joint_and_the_unlike_pose(project, tmp_path):
+    from kinemark.core.ranking import rank_queue
+    fids = _reason_project(project, tmp_path)
+    # de-duplication off: it would drop the copies of the labelled pose from the batch
+    by = {e.frame_id: e.reasons for e in rank_queue(project, 9, weights=RankWeights(dedup_window=-1))}
+    assert len(by) == 9
+    assert fids[0] not in by                                         # labelled: not queued
+    assert any(r.startswith("model unsure about left wrist") for r in by[fids[5]])
+    assert "pose unlike any labelled frame" in by[fids[9]]
+    # exactly the labelled pose: not called unlike, and nobody unsure about it
+    assert not any("unlike" in r for r in by[fids[3]])
+    assert not any("unsure" in r for r in by[fids[3]])
+
+
+def test_queue_reasons_do_not_depend_on_the_batch_size(project, tmp_path):
+    from kinemark.core.ranking import rank_queue
+    _reason_project(project, tmp_path)
+    w = RankWeights(dedup_window=-1)       # every frame queued, so the batch sizes differ
+    long = rank_queue(project, 9, weights=w)
+    assert len(long) == 9
+    for n in (1, 2, 4):
+        short = rank_queue(project, n, weights=w)
+        assert [(e.frame_id, e.reasons) for e in short] == [(e.frame_id, e.reasons) for e in long[:n]]
+
+
+def test_identical_poses_are_not_novel_from_rounding():
+    """A pool of one repeated pose (a still patient, a paused video): the typical distance
+    between pool poses is then about 0, and differences far below a visible change (here a
+    ten-millionth of a torso length) must not count as novelty."""
+    rng = np.random.default_rng(1)
+    pose = rng.normal(size=8)
+    X = np.tile(pose, (12, 1)) + rng.normal(0, 1e-7, (12, 8))
+    q = RankingQueue(X, np.full(12, 0.5), np.zeros(12, int), np.arange(12) * 100,
+                     RankWeights(dedup_window=-1), pose[None])
+    nov = [p[3] for p in q.select(5)]
+    assert max(nov) < 0.01
