@@ -33,8 +33,8 @@ import numpy as np
 from . import coco
 from .errors import KinemarkError
 from .metrics import bbox_from_keypoints, keypoint_similarity, oks
-from .model import ACCEPTED, Changes, Event, SecondLabel
-from .qa import LABELLED_STATES, torso_size
+from .model import ACCEPTED, LABELLED_STATES, Changes, Event, SecondLabel
+from .qa import torso_size
 
 DEFAULT_SHARE = 0.10
 PCK_FRACTION = 0.1

@@ -18,6 +18,9 @@ IN_REVIEW = "in_review"      # handed to the reviewer
 ACCEPTED = "accepted"        # the reviewer accepted it: the only state exported by default
 RETURNED = "returned"        # the reviewer sent it back with notes
 STATES = (PREFILLED, DRAFTING, IN_REVIEW, ACCEPTED, RETURNED)
+# states in which a person has put their own labels on the frame (the poses novelty is measured
+# against; the labels QA and agreement look at)
+LABELLED_STATES = (DRAFTING, IN_REVIEW, RETURNED, ACCEPTED)
 
 # Where each point came from.
 SOURCES = ("model", "adapted", "human", "propagated", "imported")

@@ -27,7 +27,7 @@ from typing import Iterable, Sequence
 import numpy as np
 
 from .errors import KinemarkError
-from .model import ACCEPTED, DRAFTING, IN_REVIEW, RETURNED
+from .model import LABELLED_STATES
 
 ERROR = "error"
 WARNING = "warning"
@@ -35,7 +35,6 @@ WARNING = "warning"
 CHECKS = ("outside_image", "required_missing", "left_right_swap", "bone_length", "visible_but_absent")
 
 #: States whose keypoints a person has touched: the ones checked and used as references.
-LABELLED_STATES = (DRAFTING, IN_REVIEW, RETURNED, ACCEPTED)
 
 #: Meta key of the project's required keypoints (a JSON list of names).
 REQUIRED_KEY = "qa_required_keypoints"

@@ -33,10 +33,9 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from .model import ACCEPTED, DRAFTING, IN_REVIEW, RETURNED
+from .model import LABELLED_STATES
 from .skeleton import Skeleton
 
-LABELLED_STATES = (DRAFTING, IN_REVIEW, ACCEPTED, RETURNED)
 SIGNALS = ("flip_disagreement", "heatmap_entropy", "pass_disagreement", "low_confidence")
 
 # the smallest typical pool distance novelty is measured in (normalised pose units, torso
