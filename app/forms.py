@@ -185,8 +185,9 @@ class NotesDialog(QDialog):
         rm.setAutoDefault(False)
         rm.clicked.connect(self._remove)
         right.addWidget(rm)
-        right.addWidget(muted_note("Pick a keypoint in the picture or the list, type a note and press Enter; "
-                                   "add as many as needed. The annotator sees each note on its keypoint."))
+        right.addWidget(muted_note("Pick a keypoint in the picture or the list, type a note and press Enter "
+                                   "to add it; add as many as needed, then Ctrl+Enter sends the frame back. "
+                                   "The annotator sees each note on its keypoint."))
         self.buttons = add_ok_cancel(self, right, "Send back", self._finish)
         lay.addLayout(right, 3)
         if current is not None and 0 <= current < len(self.names):
@@ -195,6 +196,16 @@ class NotesDialog(QDialog):
         self.text.setFocus()
         self.resize(720, 420)
         self._update()
+
+    def keyPressEvent(self, event):
+        # Enter adds the typed note (the text field's returnPressed) and never sends the frame
+        # back, as the dialog's default button would; Ctrl+Enter sends
+        if event.key() in (Qt.Key_Return, Qt.Key_Enter):
+            event.accept()
+            if event.modifiers() & Qt.ControlModifier:
+                self._finish()
+            return
+        super().keyPressEvent(event)
 
     def _pick(self, i: int):
         self.about.setCurrentIndex(i + 1)

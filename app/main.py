@@ -37,7 +37,7 @@ from .forms import ExportDialog, NotesDialog, WhoDialog
 from .frames import FrameWorker, prepare
 from .panels.overview import OverviewPage
 from .panels.points import KeypointPanel
-from .panels.queue import QueuePanel, load_live_queue, load_queue
+from .panels.queue import Entry as QueueEntryView, QueuePanel, load_live_queue, load_queue
 
 QUEUE_BATCH = 50
 from .panels.signoff import SignoffList, SignoffPanel, flag_text
@@ -51,6 +51,7 @@ LABEL_PAGE, OVERVIEW_PAGE, SIGNOFF_PAGE = 0, 1, 2
 #: where the person may sign the frame off.
 EDIT_COMMANDS = ("point.put", "point.visibility", "point.confirm", "point.confirm_all", "assist.carry",
                  "assist.fill", "assist.model", "frame.hand_in")
+NAVIGATION_COMMANDS = ("frame.next", "frame.prev", "queue.next", "point.next", "point.prev")
 
 
 def _key(root: Path) -> str:
@@ -294,7 +295,7 @@ class MainWindow(QMainWindow):
         self.task = TaskLine()
         self.task.finished.connect(lambda: self.caution_label.setText(CAUTION_SHORT))
         self.user_label = QLabel("")
-        self.user_label.setToolTip("who is working: Project ▸ Who is working… to change")
+        self.user_label.setToolTip("who is working, and their role: Project ▸ Who is working… to change")
         self.model_label = QLabel("")
         self.caution_label = QLabel(CAUTION_SHORT)
         self.caution_label.setToolTip(CAUTION)
@@ -359,6 +360,10 @@ class MainWindow(QMainWindow):
             fn = handlers[c.id]
             if c.id in EDIT_COMMANDS:
                 fn = self._guarded(fn)
+            elif c.id == "frame.take_back":      # one's own frame, from any page that shows it
+                fn = self._guarded(fn, signoff_read_only=False)
+            elif c.id in NAVIGATION_COMMANDS:
+                fn = self._shows_frame(fn)
             a.triggered.connect(fn)
             self.addAction(a)
             self.keys.bind(c.id, a)
@@ -401,13 +406,27 @@ class MainWindow(QMainWindow):
         if hasattr(self, "who_action"):
             self.who_action.setEnabled(on)
 
-    def _guarded(self, fn):
-        """On the Sign-off page the frame is read-only unless this person may correct it."""
+    def _guarded(self, fn, *, signoff_read_only: bool = True):
+        """Edits act on the frame on screen: never from the Overview page (which shows none), and
+        (``signoff_read_only``) on the Sign-off page only when this person may correct the frame."""
         def run():
-            if self.tabs.currentIndex() == SIGNOFF_PAGE and not self.canvas.editable:
+            if self.tabs.currentIndex() == OVERVIEW_PAGE:
+                self.statusBar().showMessage("the Overview shows no frame to change: go to the Label page "
+                                             f"({self.keys.text('view.label')}) first", 5000)
+                return
+            if signoff_read_only and self.tabs.currentIndex() == SIGNOFF_PAGE and not self.canvas.editable:
                 self.statusBar().showMessage(self.signoff.may.text() or
                                              "read-only here: choose a frame that you may sign off", 5000)
                 return
+            fn()
+        return run
+
+    def _shows_frame(self, fn):
+        """Frame navigation pressed on the Overview page (which shows no frame) opens the Label
+        page first, so the frame it goes to is on screen."""
+        def run():
+            if self.tabs.currentIndex() == OVERVIEW_PAGE:
+                self.tabs.setCurrentIndex(LABEL_PAGE)
             fn()
         return run
 
@@ -535,7 +554,7 @@ class MainWindow(QMainWindow):
 
     def _set_user(self, who):
         self.user_name, self.user_role = who.name, who.role
-        self.user_label.setText(f"working as {who.name} ({who.role})")
+        self.user_label.setText(f"{who.name} ({who.role})")
 
     def ask_who(self):
         """Change who is working (the undo history is cleared: it was the other person's)."""
@@ -805,7 +824,10 @@ class MainWindow(QMainWindow):
         try:
             ch = fn()
         except KinemarkError as e:
-            self.background.show_error(e)
+            # a refused edit of the frame on screen: said in the status bar, not in a box that
+            # takes the keyboard away until it is closed
+            QApplication.beep()
+            self.statusBar().showMessage(f"{text}: {e}", 10000)
             self.load_points()
             return None
         self.push_changes(text, ch)
@@ -913,12 +935,13 @@ class MainWindow(QMainWindow):
             self._show_checks()
         if flags:
             n_err = sum(f.severity == "error" for f in flags)
+            n_warn = len(flags) - n_err
             self.statusBar().showMessage(
-                f"handed in for review · the QA checks found {n_err} error(s) and {len(flags) - n_err} "
-                f"warning(s): see Checks in the Keypoints panel ({self.keys.text('frame.take_back')} takes "
-                "the frame back to fix them)", 10000)
+                f"handed in · QA: {n_err} error{'s' if n_err != 1 else ''}, {n_warn} warning"
+                f"{'s' if n_warn != 1 else ''} (see Checks) · {self.keys.text('frame.take_back')} takes it back",
+                10000)
         else:
-            self.statusBar().showMessage("handed in for review · the QA checks found nothing to look at", 5000)
+            self.statusBar().showMessage("handed in for review · QA found nothing to look at", 5000)
 
     def take_back(self):
         """Recall a frame one handed in (core refuses once it is signed off, or for someone else's)."""
@@ -1251,7 +1274,27 @@ class MainWindow(QMainWindow):
             self._live = None
             self.statusBar().showMessage(f"Up next could not be updated ({e}); use Re-rank", 8000)
 
+    def _sent_back_entries(self) -> list:
+        """Frames sent back to the person working, for the top of Up next."""
+        try:
+            back = review.sent_back_to(self.project, self.user_name)
+        except KinemarkError:
+            return []
+        out = []
+        for fid, n in back:
+            f = self.frame_by_id.get(fid)
+            if f is None:
+                continue
+            why = (f"sent back with {n} open note{'s' if n != 1 else ''}" if n else "sent back by the reviewer")
+            out.append(QueueEntryView(fid, f.media_id, f.frame_index, float("inf"),
+                                      (why + ": fix, then hand in again",)))
+        return out
+
     def _show_queue(self, entries, note):
+        back = self._sent_back_entries() if self.project is not None else []
+        if back:
+            ids = {e.frame_id for e in back}
+            entries = back + [e for e in entries if e.frame_id not in ids]
         self.queue.button.setEnabled(True)
         self.queue.set_entries(entries, lambda e: self.describe_short(self.frame_by_id[e.frame_id])
                                if e.frame_id in self.frame_by_id else f"frame {e.frame_id}",
@@ -1371,7 +1414,7 @@ class MainWindow(QMainWindow):
         notes = [n for n in review.notes_for_frame(self.project, it.frame_id, include_addressed=True)
                  if n.person == it.person]
         self.signoff.show_item(it, names=self.project.skeleton.keypoints,
-                               users=getattr(self, "_users_by_id", {}), notes=notes, may=may)
+                               users=getattr(self, "_users_by_id", {}), notes=notes, may=may, can_decide=can)
         self.signoff.keys.setText(" · ".join(f"{self.keys.text(c)} {w}" for c, w in (
             ("signoff.accept", "accept"), ("signoff.send_back", "send back"), ("queue.next", "next"),
             ("signoff.accept_clean", "accept all without flags"))))
@@ -1384,12 +1427,15 @@ class MainWindow(QMainWindow):
             return False
         return True
 
-    def _signed_off(self, it, ch):
-        """After a decision on ``it``: refresh what it touched, then show the next frame waiting."""
+    def _signed_off(self, it, ch, done: str):
+        """After a decision on ``it`` (``done``: what happened, in words): refresh what it touched,
+        then show the next frame waiting."""
         nxt = self.signoff_list.after(it.annotation_id)
         self.signoff_list.remove(it.annotation_id)
         self._hand_in_flags.pop(it.frame_id, None)
-        self.after_change(Changes(frames=(it.frame_id,), annotations=ch.annotations, message=ch.message))
+        f = self.frame_by_id.get(it.frame_id)
+        msg = f"{done}: {self.describe_frame(f)}" if f is not None else ch.message
+        self.after_change(Changes(frames=(it.frame_id,), annotations=ch.annotations, message=msg))
         if nxt is not None:
             self.show_for_signoff(nxt.annotation_id)
         else:
@@ -1408,7 +1454,7 @@ class MainWindow(QMainWindow):
         except KinemarkError as e:
             self.background.show_error(e)
             return
-        self._signed_off(it, ch)
+        self._signed_off(it, ch, "accepted")
 
     def signoff_send_back(self):
         if self.project is None or not self._on_signoff_page("Send back"):
@@ -1437,22 +1483,22 @@ class MainWindow(QMainWindow):
         except KinemarkError as e:
             self.background.show_error(e)
             return
-        self._signed_off(it, ch)
+        self._signed_off(it, ch, f"sent back with {len(notes)} note{'s' if len(notes) != 1 else ''}")
 
     def ask_yes_no(self, text: str) -> bool:
         """Ask before a batch decision (a modal question; tests replace it)."""
         return QMessageBox.question(self, "Kinemark", text) == QMessageBox.Yes
 
     def signoff_accept_clean(self):
-        if self.project is None:
+        if self.project is None or not self._on_signoff_page("Accept all without QA flags"):
             return
         listed = [it for it in self.signoff_list.items if not it.flags]
         if not self._signoff_dirty and not listed:
             self.statusBar().showMessage("no frame in review is free of QA flags", 5000)
             return
         n = f"the {len(listed)} frame(s)" if not self._signoff_dirty else "every frame"
-        if not self.ask_yes_no(f"Accept {n} in review that have no QA flag? Frames that {self.user_name} "
-                            "labelled or handed in are skipped: someone else signs those off."):
+        if not self.ask_yes_no(f"Accept {n} in review with no QA flag? Frames that {self.user_name} "
+                               "labelled or handed in are skipped: someone else signs those off."):
             return
         user = self.user_name
 

@@ -385,6 +385,27 @@ def notes_for_frame(project, frame_id: int, *, include_addressed: bool = False) 
     return out
 
 
+def sent_back_to(project, user=None) -> list[tuple[int, int]]:
+    """Frames a reviewer sent back that ``user`` labelled or handed in, in frame order, each
+    with its number of open notes: (frame id, open notes). A sent-back frame with no recorded
+    author or submitter (say, imported) is everyone's to pick up."""
+    who = _user(project, user)
+    anns = [a for a in project.store.annotations(states=[RETURNED])]
+    if not anns:
+        return []
+    auth = authorships(project, [a.id for a in anns])
+    open_notes: dict[int, int] = {}
+    for n in project.store.review_notes([a.id for a in anns], open_only=True):
+        open_notes[n.annotation_id] = open_notes.get(n.annotation_id, 0) + 1
+    out = {}
+    for a in anns:
+        responsible = auth[a.id].responsible
+        if responsible and who.id not in responsible:
+            continue
+        out[a.frame_id] = out.get(a.frame_id, 0) + open_notes.get(a.id, 0)
+    return sorted(out.items())
+
+
 # ---- the reviewer's queue ------------------------------------------------------------------
 
 #: Weights of the risk score (Kinemark's choice, not a published scheme).

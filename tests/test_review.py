@@ -256,6 +256,21 @@ def test_send_back_pins_notes_to_keypoints_and_the_annotator_sees_them(project, 
     assert len(old) == 3 and all(n.note.addressed_by == team["ann"].id for n in old)
 
 
+def test_frames_sent_back_are_listed_for_the_person_who_labelled_them(project, team):
+    f1, f2 = _frames(project, 2)
+    a1 = _to_state(project, f1, IN_REVIEW)                 # labelled and handed in by "ann"
+    a2 = _to_state(project, f2, IN_REVIEW)
+    assert review.sent_back_to(project, "ann") == []
+    review.send_back(project, a1.id, [("left_wrist", "on the styloid"), (None, "whole arm")], user="rev")
+    review.send_back(project, a2.id, [(None, "recheck")], user="rev")
+    assert review.sent_back_to(project, "ann") == [(f1, 2), (f2, 1)]
+    assert review.sent_back_to(project, "ann2") == []     # not theirs to fix
+    # worked on and handed in again: no longer waiting
+    review.edit(project, f1, _pose(1), H, user="ann")
+    review.submit(project, a1.id, user="ann")
+    assert review.sent_back_to(project, "ann") == [(f2, 1)]
+
+
 def test_allowed_transitions_for_the_gui(project, team):
     fid = _frames(project)[0]
     a = _to_state(project, fid, IN_REVIEW)

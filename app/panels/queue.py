@@ -12,7 +12,6 @@ from ...core.model import ACCEPTED, IN_REVIEW
 from .common import DONE, entry_list, fill_entries, list_panel_head, select_entry, thumbnail_icon
 
 
-
 @dataclass(frozen=True)
 class Entry:
     """What the panel needs of a queue entry (core.ranking.QueueEntry has these and more)."""
@@ -88,6 +87,8 @@ class QueuePanel(QWidget):
         self.entries: list = []
         self._items: dict[int, QListWidgetItem] = {}
         self._done: set[int] = set()
+        self._current: int | None = None
+        self._followers: tuple[int, list[int]] | None = None   # (frame, entries after it before a re-rank)
 
     def set_progress(self, accepted: int, in_review: int, target: int):
         target = max(int(target), 1)
@@ -98,6 +99,10 @@ class QueuePanel(QWidget):
                                       "(project setting target_frames)")
 
     def set_entries(self, entries, describe, note: str = "", states: dict | None = None):
+        old = [int(e.frame_id) for e in self.entries]
+        if self._current in old:
+            # where the current frame stood, for Next in line once a re-rank drops it
+            self._followers = (self._current, old[old.index(self._current) + 1:])
         self.entries = list(entries)
         fill_entries(self.list, self._items, self.entries, key=lambda e: e.frame_id, describe=describe,
                      reasons=lambda e: "; ".join(e.reasons) if e.reasons else "")
@@ -110,6 +115,7 @@ class QueuePanel(QWidget):
 
     def clear(self):
         self.entries = []
+        self._followers = None
         self.list.clear()
         self._items.clear()
         self.note.setVisible(False)
@@ -121,6 +127,7 @@ class QueuePanel(QWidget):
             it.setData(DONE, fid in self._done)
 
     def set_current(self, frame_id: int | None):
+        self._current = frame_id
         select_entry(self.list, self._items.get(frame_id) if frame_id is not None else None)
 
     def set_thumbnail(self, frame_id: int, image: QImage):
@@ -129,11 +136,21 @@ class QueuePanel(QWidget):
             it.setIcon(thumbnail_icon(image))
 
     def next_after(self, frame_id: int | None) -> int | None:
-        """The next entry not yet handed in, after ``frame_id`` (wrapping round)."""
+        """The next entry not yet handed in, after ``frame_id`` (wrapping round).
+
+        When ``frame_id`` has left the list (labelled, so re-ranked away), "after" is where it
+        stood before: the first of the entries that followed it then and are still listed, so
+        frames one skipped on the way are not offered again first.
+        """
         ids = [int(e.frame_id) for e in self.entries]
         if not ids:
             return None
-        start = ids.index(frame_id) + 1 if frame_id in ids else 0
+        start = 0
+        if frame_id in ids:
+            start = ids.index(frame_id) + 1
+        elif self._followers is not None and self._followers[0] == frame_id:
+            listed = set(ids)
+            start = next((ids.index(f) for f in self._followers[1] if f in listed), 0)
         for fid in ids[start:] + ids[:start]:
             if fid not in self._done and fid != frame_id:
                 return fid

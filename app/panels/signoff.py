@@ -183,11 +183,13 @@ class SignoffPanel(QWidget):
         outer.addWidget(self.keys)
         self.show_item(None)
 
-    def show_item(self, item, *, names=(), users=None, notes=(), may: str = "", state: str | None = None):
-        """``item``: a core.review.QueueItem (None: nothing chosen). ``notes``: FrameNote list."""
+    def show_item(self, item, *, names=(), users=None, notes=(), may: str = "", state: str | None = None,
+                  can_decide: bool = True):
+        """``item``: a core.review.QueueItem (None: nothing chosen). ``notes``: FrameNote list.
+        ``can_decide``: the person working may accept or send back this frame (``may`` says why not)."""
         on = item is not None
-        self.accept_button.setEnabled(on)
-        self.back_button.setEnabled(on)
+        self.accept_button.setEnabled(on and can_decide)
+        self.back_button.setEnabled(on and can_decide)
         if not on:
             self.who.setText("Choose a frame on the left." if state is None else
                              f"This frame is {theme.STATE_WORDS.get(state, state)}, not waiting for sign-off.")

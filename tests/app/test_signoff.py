@@ -194,7 +194,9 @@ def test_an_annotator_cannot_accept_and_sees_the_core_message(qtbot, team, setti
     w = open_window(qtbot, team.root, settings, user="ra")
     _signoff(qtbot, w)
     assert not w.canvas.editable                         # read-only for the annotator
-    QTest.mouseClick(w.signoff.accept_button, Qt.LeftButton)
+    # the buttons are off, and the key, which still works, is refused by core with its reason
+    assert not w.signoff.accept_button.isEnabled() and not w.signoff.back_button.isEnabled()
+    w.actions["signoff.accept"].trigger()
     assert team.store.annotation_by_id(aid).state == IN_REVIEW
     assert len(team.store.events()) == before            # nothing stored
     with pytest.raises(KinemarkError) as refused:
@@ -211,7 +213,8 @@ def test_a_reviewer_cannot_sign_off_their_own_work(qtbot, team, settings):
     w = open_window(qtbot, team.root, settings, user="rev")
     _signoff(qtbot, w)
     assert "their own work" in w.signoff.may.text()
-    QTest.mouseClick(w.signoff.accept_button, Qt.LeftButton)
+    assert not w.signoff.accept_button.isEnabled()
+    w.actions["signoff.accept"].trigger()
     assert team.store.annotation_by_id(aid).state == IN_REVIEW
     assert "their own work" in w.background.boxes[-1].text()
     w.close()
@@ -261,6 +264,58 @@ def test_accept_all_without_qa_flags_leaves_the_flagged_ones(qtbot, team, settin
     assert team.store.annotation_by_id(clean).state == ACCEPTED
     assert team.store.annotation_by_id(flagged).state == IN_REVIEW
     assert [it.annotation_id for it in w.signoff_list.items] == [flagged]
+    w.close()
+
+
+def test_accept_all_key_works_only_on_the_signoff_page(qtbot, team, settings):
+    """Shift+A on the Label page must not accept frames nobody has looked at."""
+    fids = _frames(team)
+    clean = _label(team, fids[0])
+    w = open_window(qtbot, team.root, settings, user="rev")
+    asked = []
+    w.ask_yes_no = lambda text: asked.append(text) or True
+    w.actions["signoff.accept_clean"].trigger()
+    qtbot.waitUntil(lambda: not w.background.busy, timeout=20000)
+    assert not asked and team.store.annotation_by_id(clean).state == IN_REVIEW
+    assert "Sign-off page" in w.statusBar().currentMessage()
+    w.close()
+
+
+def test_enter_in_the_notes_dialog_adds_a_note_and_ctrl_enter_sends(qtbot):
+    from kinemark.app.forms import NotesDialog
+    from kinemark.app.main import make_app
+    from kinemark.core.skeleton import COCO17
+    make_app()
+    d = NotesDialog(COCO17.keypoints, COCO17.edges, POSE, current=LEFT_WRIST)
+    qtbot.addWidget(d)
+    d.show()
+    qtbot.waitExposed(d)
+    d.activateWindow()
+    d.text.setFocus()
+    for note in ("wrist on the sleeve edge", "check the elbow too"):
+        QTest.keyClicks(d.text, note)
+        QTest.keyClick(d.text, Qt.Key_Return)
+        assert d.isVisible() and d.result() == 0          # Enter added the note, sent nothing
+    assert [t for _, t in d.notes()] == ["wrist on the sleeve edge", "check the elbow too"]
+    QTest.keyClick(d.text, Qt.Key_Return, Qt.ControlModifier)
+    assert d.result() == d.DialogCode.Accepted
+
+
+def test_a_frame_sent_back_heads_its_annotators_up_next(qtbot, team, settings):
+    fids = _frames(team)
+    aid = _label(team, fids[2])
+    review.send_back(team, aid, [(LEFT_WRIST, "wrist on the sleeve edge")], user="rev")
+    w = open_window(qtbot, team.root, settings, user="ra")
+    qtbot.waitUntil(lambda: w.queue.list.count() > 0, timeout=10000)
+    top = w.queue.entries[0]
+    assert top.frame_id == fids[2] and top.reasons[0].startswith("sent back with 1 open note")
+    assert [e.frame_id for e in w.queue.entries].count(fids[2]) == 1
+    # for another annotator it is not theirs to fix
+    team.store.add_user("ra2", "annotator", by=team.user("lead").id)
+    assert w.switch_user("ra2")
+    w.refresh_queue()
+    qtbot.waitUntil(lambda: not w.background.busy, timeout=10000)
+    assert fids[2] not in [e.frame_id for e in w.queue.entries]
     w.close()
 
 

@@ -214,6 +214,50 @@ def test_no_jump_to_up_next_once_the_person_has_moved(qtbot, clip_project, setti
     w.close()
 
 
+def test_next_in_line_after_labelling_goes_on_from_where_the_frame_stood(qtbot, clip_project, settings):
+    """Labelling a frame drops it from Up next; N then goes to the frame that followed it, not
+    back to the frames skipped on the way."""
+    _uncertain_last_frame(clip_project)
+    from .conftest import open_window
+    w = open_window(qtbot, clip_project.root, settings)
+    qtbot.waitUntil(lambda: w.queue.list.count() > 0, timeout=10000)
+    order = [e.frame_id for e in w.queue.entries]
+    assert len(order) >= 3
+    w.go(order[0])
+    w.next_in_line()                                   # skip the first
+    assert w.frame_id == order[1]
+    w.put_at(12.0, 13.0)                               # labelled: it leaves Up next
+    qtbot.waitUntil(lambda: order[1] not in [e.frame_id for e in w.queue.entries], timeout=10000)
+    w.next_in_line()
+    assert w.frame_id == order[2]
+    w.close()
+
+
+def test_the_overview_page_edits_nothing_and_navigation_shows_the_label_page(window, qtbot):
+    from kinemark.app.main import LABEL_PAGE, OVERVIEW_PAGE
+    fid = window.order[0]
+    window.go(fid)
+    before = _stored(window, fid, 0)
+    window.tabs.setCurrentIndex(OVERVIEW_PAGE)
+    window.actions["point.visibility"].trigger()
+    window.actions["point.confirm_all"].trigger()
+    assert _stored(window, fid, 0) == before and window.frame_id == fid
+    assert "Label page" in window.statusBar().currentMessage()
+    window.actions["frame.next"].trigger()
+    assert window.tabs.currentIndex() == LABEL_PAGE and window.frame_id == window.order[1]
+
+
+def test_a_refused_edit_is_said_in_the_status_bar_not_a_box(window):
+    fid = window.order[0]
+    window.go(fid)
+    window.set_point_index(0)
+    window.put_at(20.0, 30.0)                          # a person's point: nothing left to confirm
+    window.set_point_index(0)
+    window.confirm(current_only=True)
+    assert not window.background.boxes
+    assert window.statusBar().currentMessage().startswith("Confirm ")
+
+
 def test_queue_falls_back_to_media_order_when_ranking_fails(window, qtbot, monkeypatch):
     import kinemark.core.ranking as ranking
 
