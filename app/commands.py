@@ -29,3 +29,23 @@ class SnapshotCommand(QUndoCommand):
     def undo(self):
         if not self.window.restore_frames(self.before, expect=self.after, action="undo"):
             self.setObsolete(True)
+
+
+class NudgeCommand(SnapshotCommand):
+    """A nudge of one keypoint by the keyboard. Nudges of the same keypoint on the same frame
+    in a row undo as one step, so holding a key down is not dozens of undos."""
+
+    ID = 1001
+
+    def __init__(self, window, text: str, before: dict, after: dict, key):
+        super().__init__(window, text, before, after)
+        self.key = key
+
+    def id(self) -> int:
+        return self.ID
+
+    def mergeWith(self, other) -> bool:
+        if not isinstance(other, NudgeCommand) or other.key != self.key:
+            return False
+        self.after = dict(other.after)      # from the first nudge's before to the last one's after
+        return True

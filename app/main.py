@@ -31,7 +31,7 @@ from ..core.model import ACCEPTED, BLANK, DRAFTING, IN_REVIEW, PREFILLED, RETURN
 from . import theme
 from .background import Background
 from .canvas import FrameCanvas
-from .commands import SnapshotCommand
+from .commands import NudgeCommand, SnapshotCommand
 from .dialogs import CAUTION, CAUTION_SHORT, NewProjectDialog, SamplingDialog, about
 from .forms import ExportDialog, NotesDialog, WhoDialog
 from .frames import FrameWorker, prepare
@@ -49,8 +49,9 @@ MAX_CARRY = 500
 LABEL_PAGE, OVERVIEW_PAGE, SIGNOFF_PAGE = 0, 1, 2
 #: Edit commands that change keypoints: on the Sign-off page they are corrections, allowed only
 #: where the person may sign the frame off.
+NUDGE_COMMANDS = tuple(f"point.nudge_{d}{far}" for far in ("", "_far") for d in ("left", "right", "up", "down"))
 EDIT_COMMANDS = ("point.put", "point.visibility", "point.confirm", "point.confirm_all", "assist.carry",
-                 "assist.fill", "assist.model", "frame.hand_in")
+                 "assist.fill", "assist.model", "frame.hand_in") + NUDGE_COMMANDS
 NAVIGATION_COMMANDS = ("frame.next", "frame.prev", "queue.next", "point.next", "point.prev")
 
 
@@ -331,6 +332,14 @@ class MainWindow(QMainWindow):
             "point.prev": lambda: self.step_point(-1),
             "point.put": self.put_here,
             "point.visibility": self.cycle_visibility,
+            "point.nudge_left": lambda: self.nudge(-1, 0),
+            "point.nudge_right": lambda: self.nudge(+1, 0),
+            "point.nudge_up": lambda: self.nudge(0, -1),
+            "point.nudge_down": lambda: self.nudge(0, +1),
+            "point.nudge_left_far": lambda: self.nudge(-10, 0),
+            "point.nudge_right_far": lambda: self.nudge(+10, 0),
+            "point.nudge_up_far": lambda: self.nudge(0, -10),
+            "point.nudge_down_far": lambda: self.nudge(0, +10),
             "point.confirm": lambda: self.confirm(current_only=True),
             "point.confirm_all": lambda: self.confirm(current_only=False),
             "edit.undo": self.undo.undo,
@@ -390,11 +399,17 @@ class MainWindow(QMainWindow):
             m = mb.addMenu(title)
             prev = None
             for c in COMMANDS:
+                if c.id in NUDGE_COMMANDS:
+                    continue                      # in their own submenu, below
                 if c.group == group:
                     if prev is not None and prev.split(".")[0] != c.id.split(".")[0]:
                         m.addSeparator()          # e.g. whole-project model runs after this frame's
                     m.addAction(self.actions[c.id])
                     prev = c.id
+            if group == "Keypoints":
+                sub = m.addMenu("Nudge")
+                for cid in NUDGE_COMMANDS:
+                    sub.addAction(self.actions[cid])
             if group == "Help":
                 m.addAction("About Kinemark").triggered.connect(lambda: about(self))
         self._enable(False)
@@ -806,8 +821,8 @@ class MainWindow(QMainWindow):
         self.points.summary.setText(f"{int((w.keypoints[:, 2] > 0).sum())} of {len(w.sources)} placed"
                                     + (f" · version {w.version}" if w.version else ""))
         self.points.hint.setText(" · ".join(f"{self.keys.text(c)} {name_}" for c, name_ in (
-            ("point.put", "put here"), ("point.visibility", "visibility"), ("point.confirm", "confirm"),
-            ("queue.next", "next in line"), ("help.keys", "all keys"))))
+            ("point.put", "put here"), ("point.nudge_left", "nudge"), ("point.visibility", "visibility"),
+            ("point.confirm", "confirm"), ("queue.next", "next in line"), ("help.keys", "all keys"))))
 
     def _update_progress(self):
         if self.project is None:
@@ -818,7 +833,9 @@ class MainWindow(QMainWindow):
 
     # ---- editing ---------------------------------------------------------------------------------
 
-    def _apply(self, text: str, fn):
+    def _apply(self, text: str, fn, *, merge_key=None):
+        """Run the edit ``fn`` on the frame on screen and make it undoable as ``text``; edits
+        with the same ``merge_key`` in a row undo as one step (:class:`NudgeCommand`)."""
         if self.project is None or self.frame_id is None:
             return None
         try:
@@ -830,15 +847,16 @@ class MainWindow(QMainWindow):
             self.statusBar().showMessage(f"{text}: {e}", 10000)
             self.load_points()
             return None
-        self.push_changes(text, ch)
+        self.push_changes(text, ch, merge_key=merge_key)
         return ch
 
-    def push_changes(self, text: str, ch):
+    def push_changes(self, text: str, ch, *, merge_key=None):
         """After an edit was stored: make it undoable and refresh what it touched."""
         before = (ch.details or {}).get("before") or {}
         if before:
             after = {fid: edit.snapshot(self.project, fid) for fid in before}
-            self.undo.push(SnapshotCommand(self, text, before, after))
+            self.undo.push(SnapshotCommand(self, text, before, after) if merge_key is None else
+                           NudgeCommand(self, text, before, after, merge_key))
         self.after_change(ch)
 
     def after_change(self, ch):
@@ -897,6 +915,22 @@ class MainWindow(QMainWindow):
         fid, i = self.frame_id, self.point
         if self._apply(f"Put {self._name(i)}", lambda: edit.set_point(self.project, fid, i, x, y, user=self.user_name)) is not None:
             self.step_point(+1)
+
+    def nudge(self, dx: float, dy: float):
+        """Move the current keypoint by (dx, dy) screen pixels (at the present zoom), for
+        keyboard-only placement after Put here or on a model's point."""
+        w = self.working
+        if w is None or self.frame_id is None:
+            return
+        i, fid = self.point, self.frame_id
+        if w.keypoints[i, 2] <= 0:
+            self.statusBar().showMessage(f"{self._name(i)} is not placed yet: {self.keys.text('point.put')} "
+                                         "puts it under the pointer first", 4000)
+            return
+        step = 1.0 / max(self.canvas.scale_factor(), 1e-9)     # one screen pixel, in frame pixels
+        x, y = float(w.keypoints[i, 0]) + dx * step, float(w.keypoints[i, 1]) + dy * step
+        self._apply(f"Nudge {self._name(i)}",
+                    lambda: edit.set_point(self.project, fid, i, x, y, user=self.user_name), merge_key=(fid, i))
 
     def cycle_visibility(self):
         w = self.working

@@ -37,6 +37,10 @@ COMMANDS: tuple[Command, ...] = (
     Command("point.prev", "Previous keypoint", ("Up",), "make the previous keypoint current", "Keypoints"),
     Command("point.put", "Put here", ("S",),
             "put the current keypoint under the pointer, then go to the next keypoint", "Keypoints"),
+    *(Command(f"point.nudge_{d}{far}", f"Nudge {d}{' far' if far else ''}", (f"{mod}{d.capitalize()}",),
+              f"move the current keypoint {'ten screen pixels' if far else 'one screen pixel'} {d}",
+              "Keypoints")
+      for far, mod in (("", "Shift+"), ("_far", "Ctrl+Shift+")) for d in ("left", "right", "up", "down")),
     Command("point.visibility", "Cycle visibility", ("V",),
             "visible → occluded → not in frame → visible", "Keypoints"),
     Command("point.confirm", "Confirm point", ("C",),

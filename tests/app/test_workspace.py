@@ -258,6 +258,30 @@ def test_a_refused_edit_is_said_in_the_status_bar_not_a_box(window):
     assert window.statusBar().currentMessage().startswith("Confirm ")
 
 
+def test_nudge_keys_move_the_point_by_screen_pixels_and_undo_as_one_step(window):
+    fid = window.order[0]
+    window.go(fid)
+    window.canvas.zoom(2.0)
+    s = window.canvas.scale_factor()
+    window.set_point_index(3)
+    window.put_at(40.0, 50.0)
+    window.set_point_index(3)
+    window.cycle_visibility()                          # occluded: a nudge keeps it so
+    for _ in range(3):
+        _key(window, Qt.Key_Right, Qt.ShiftModifier)
+    _key(window, Qt.Key_Up, Qt.ControlModifier | Qt.ShiftModifier)
+    x, y, v = _stored(window, fid, 3)
+    assert x == pytest.approx(40.0 + 3 / s, abs=1e-9) and y == pytest.approx(50.0 - 10 / s, abs=1e-9)
+    assert v == 1.0 and window.project.store.annotation(fid).sources[3] == "human"
+    assert window.frame_id == fid and window.point == 3        # nudging stays on the keypoint
+    _key(window, Qt.Key_Z, Qt.ControlModifier)                 # the four nudges: one undo
+    assert _stored(window, fid, 3) == [40.0, 50.0, 1.0]
+    # a keypoint not placed yet is not nudged
+    window.set_point_index(4)
+    _key(window, Qt.Key_Left, Qt.ShiftModifier)
+    assert _stored(window, fid, 4)[2] == 0.0 and "not placed yet" in window.statusBar().currentMessage()
+
+
 def test_queue_falls_back_to_media_order_when_ranking_fails(window, qtbot, monkeypatch):
     import kinemark.core.ranking as ranking
 
