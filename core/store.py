@@ -271,17 +271,55 @@ class _PgConnection:
         self.raw.close()
 
 
+# SQLite errors that come from the file or the machine, never from Kinemark's own statements:
+# said to the person as what to do (KinemarkError), not as an internal error
+_SQLITE_TROUBLE = (
+    ("attempt to write a readonly database",
+     "the project database {path} is read-only here: check the permissions of the file and its folder "
+     "(the change was not saved)"),
+    ("database disk image is malformed",
+     "the project database {path} is damaged (SQLite: database disk image is malformed): restore it from "
+     "a backup; Kinemark wrote nothing"),
+    ("file is not a database", "{path} is not a Kinemark project database (SQLite: file is not a database)"),
+    ("database or disk is full",
+     "the disk holding the project {path} is full: free some space (the change was not saved)"),
+    ("disk I/O error", "the disk holding the project database {path} reported an error (the change was "
+                       "not saved): check the disk, then restore from a backup if the project will not open"),
+)
+
+
+def _sqlite_trouble(e: Exception, path) -> KinemarkError | None:
+    text = str(e)
+    for key, words in _SQLITE_TROUBLE:
+        if key in text:
+            return KinemarkError(words.format(path=path))
+    return None
+
+
 class _SqliteConnection:
     dialect = "sqlite"
 
-    def __init__(self, conn):
+    def __init__(self, conn, path=None):
         self.raw = conn
+        self.path = path
 
     def execute(self, sql, args=()):
-        return self.raw.execute(sql, args)
+        try:
+            return self.raw.execute(sql, args)
+        except sqlite3.DatabaseError as e:
+            said = _sqlite_trouble(e, self.path)
+            if said is None:
+                raise
+            raise said from None
 
     def executemany(self, sql, rows):
-        return self.raw.executemany(sql, rows)
+        try:
+            return self.raw.executemany(sql, rows)
+        except sqlite3.DatabaseError as e:
+            said = _sqlite_trouble(e, self.path)
+            if said is None:
+                raise
+            raise said from None
 
     def close(self):
         self.raw.close()
@@ -353,7 +391,14 @@ class Store:
         try:
             raw = sqlite3.connect(str(self.path), isolation_level=None, check_same_thread=False,
                                   timeout=30.0)
-            self._db = _SqliteConnection(raw)
+            self._db = _SqliteConnection(raw, self.path)
+            if not create and self.version() == 0:
+                # an empty file, or another program's SQLite database: look, never write (the
+                # journal mode below and the migrations would change it)
+                raw.close()
+                raise KinemarkError(f"{self.path} is not a Kinemark project database (it is empty or "
+                                    "belongs to another program); nothing was changed. If a project's "
+                                    "creation was interrupted, remove the file and create the project again")
             self._db.execute("PRAGMA journal_mode=WAL")
             self._db.execute("PRAGMA foreign_keys=ON")
             self._db.execute("PRAGMA synchronous=NORMAL")
@@ -362,6 +407,10 @@ class Store:
             # append-only trigger (SQLite fires delete triggers on REPLACE only recursively)
             self._db.execute("PRAGMA recursive_triggers=ON")
         except sqlite3.DatabaseError as e:
+            if "unable to open database file" in str(e) and not os.access(self.path.parent, os.W_OK):
+                raise KinemarkError(f"the project folder {self.path.parent} is read-only: Kinemark keeps a "
+                                    "journal beside its database and cannot open it there. Copy the project "
+                                    "to a folder you may write to") from None
             raise KinemarkError(f"cannot open project database {self.path}: {e}") from None
         if create:
             try:

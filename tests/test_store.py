@@ -145,3 +145,62 @@ def test_database_file_private(project):
     import stat
     mode = stat.S_IMODE(os.stat(project.root / DB_NAME).st_mode)
     assert mode & 0o077 == 0
+
+
+# ---- files that are not, or no longer, a healthy project database -------------------------
+
+def _digest(path):
+    import hashlib
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+@pytest.mark.parametrize("kind", ["empty", "foreign"])
+def test_an_empty_or_foreign_database_is_refused_untouched(tmp_path, kind):
+    """Opening must not turn another program's SQLite file (or an empty file) into a project:
+    the journal-mode switch and the migrations would both write to it."""
+    path = tmp_path / DB_NAME
+    if kind == "empty":
+        path.write_bytes(b"")
+    else:
+        c = sqlite3.connect(path)
+        c.execute("CREATE TABLE appointments (id INTEGER PRIMARY KEY, note TEXT)")
+        c.execute("INSERT INTO appointments (note) VALUES ('Quillon Bay, reach practice')")
+        c.commit()
+        c.close()
+    before = _digest(path)
+    with pytest.raises(KinemarkError, match="not a Kinemark project database"):
+        Store(path)
+    with pytest.raises(KinemarkError, match="not a Kinemark project database"):
+        Project.open(tmp_path)
+    assert _digest(path) == before
+    assert not (tmp_path / (DB_NAME + "-wal")).exists()
+
+
+def test_a_corrupted_database_is_a_user_error_not_an_internal_one(tmp_path):
+    p = Project.create(tmp_path / "p", COCO17, owner="ra1")
+    for i in range(300):                                   # enough pages to damage some
+        p.store.set_meta(f"filler_{i}", "x" * 2000)
+    p.close()
+    path = tmp_path / "p" / DB_NAME
+    data = bytearray(path.read_bytes())
+    half = len(data) // 2
+    data[half:] = b"\xa5" * (len(data) - half)             # the second half of the file
+    path.write_bytes(bytes(data))
+    with pytest.raises(KinemarkError, match="database .* is damaged"):
+        with Project.open(tmp_path / "p") as q:
+            for i in range(300):
+                q.store.get_meta(f"filler_{i}")
+
+
+def test_writing_to_a_read_only_database_is_said_plainly(tmp_path):
+    """SQLite's own read-only refusal (a connection opened read-only), through the store's
+    connection wrapper: a user error naming the file, not an OperationalError."""
+    p = Project.create(tmp_path / "p", COCO17, owner="ra1")
+    p.close()
+    path = tmp_path / "p" / DB_NAME
+    ro = store_mod._SqliteConnection(sqlite3.connect(f"file:{path}?mode=ro", uri=True), path)
+    with pytest.raises(KinemarkError, match="read-only"):
+        ro.execute("INSERT INTO meta(key, value) VALUES ('x', 'y')")
+    with pytest.raises(sqlite3.OperationalError):           # Kinemark's own mistakes stay loud
+        ro.execute("SELECT no_such_column FROM meta")
+    ro.close()
