@@ -28,6 +28,7 @@ O(frames x batch).
 from __future__ import annotations
 
 import json
+import math
 import warnings
 from dataclasses import asdict, dataclass, field
 
@@ -68,7 +69,12 @@ class RankWeights:
             return cls()
         data = json.loads(text)
         known = {k: v for k, v in data.items() if k in cls.__dataclass_fields__}
-        return cls(**known)
+        from .errors import KinemarkError
+        try:      # the same checks as a person's weights: stored ones may predate them
+            return cls.parse_user(json.dumps(known))
+        except KinemarkError as e:
+            raise KinemarkError(f"the project's stored ranking weights cannot be used ({e}); set them again "
+                                "with kinemark rank DIR --set-weights JSON") from None
 
     @classmethod
     def parse_user(cls, text: str, base: "RankWeights | None" = None) -> "RankWeights":
@@ -86,10 +92,16 @@ class RankWeights:
             if k not in fields:
                 raise KinemarkError(f"unknown ranking weight {k!r}; known: {', '.join(fields)}")
             kind = int if fields[k].type in ("int", int) else float
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or (kind is int and v != int(v)):
-                raise KinemarkError(f"ranking weight {k!r} must be a {'whole ' if kind is int else ''}number")
+            # JSON as Python reads it also allows NaN, Infinity and 1e400 (= inf)
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) \
+                    or (kind is int and v != int(v)):
+                raise KinemarkError(f"ranking weight {k!r} must be a finite "
+                                    f"{'whole ' if kind is int else ''}number")
             if k != "dedup_window" and v < 0:
                 raise KinemarkError(f"ranking weight {k!r} must not be negative")
+            if k == "novelty_cap" and v <= 0:
+                raise KinemarkError("ranking weight 'novelty_cap' must be above 0 (novelty is measured in "
+                                    "units of it)")
             out[k] = kind(v)
         return cls(**out)
 
@@ -431,6 +443,9 @@ class LiveQueue:
         return len(new)
 
     def next(self, batch: int = 50) -> list[QueueEntry]:
+        if int(batch) < 1:
+            from .errors import KinemarkError
+            raise KinemarkError(f"a batch needs at least one frame, not {batch}")
         skel = self.project.skeleton
         entries: list[QueueEntry] = []
         if self.queue is not None:

@@ -152,9 +152,22 @@ def test_project_weights_are_checked_field_by_field():
     assert RankWeights.from_json(w.to_json()) == w
     for bad, msg in [('{"bogus": 1}', "unknown ranking weight"), ('{"novelty": -1}', "negative"),
                      ('{"dedup_window": 2.5}', "whole number"), ('[1]', "JSON object"), ('{', "not valid JSON"),
-                     ('{"novelty": true}', "number")]:
+                     ('{"novelty": true}', "number"), ('{"uncertainty": NaN}', "finite"),
+                     ('{"novelty": 1e400}', "finite"), ('{"novelty_cap": 0}', "above 0")]:
         with pytest.raises(KinemarkError, match=msg):
             RankWeights.parse_user(bad)
+    # weights stored before these checks existed are refused with a way out, not a crash
+    with pytest.raises(KinemarkError, match="--set-weights"):
+        RankWeights.from_json('{"novelty_cap": 0}')
+
+
+def test_a_batch_needs_a_frame(project, tmp_path):
+    from kinemark.core.errors import KinemarkError
+    from kinemark.core.ranking import rank_queue
+    _reason_project(project, tmp_path)
+    for n in (0, -5):
+        with pytest.raises(KinemarkError, match="at least one frame"):
+            rank_queue(project, n)
 
 
 def test_clip_decay_discounts_uncertainty_not_novelty():
