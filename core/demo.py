@@ -200,6 +200,29 @@ def ensure_clips(clips_dir: Path, *, size: str, seed: int, progress=None) -> Pat
     return clips_dir
 
 
+DEMO_MARK = "demo_scenario"      # project setting: set on the projects build_project creates
+
+
+def is_demo_project(project) -> bool:
+    """Whether ``project`` is one the demo built: marked so at creation; a project built before
+    the mark existed counts when every one of its media is a clip of the scenario beside it."""
+    if project.store.get_meta(DEMO_MARK):
+        return True
+    media = project.store.all_media()
+    try:
+        scenario = json.loads((project.root / "clips" / "scenario.json").read_text())
+        names = {c["name"] for c in scenario["clips"]}
+    except (OSError, ValueError, KeyError, TypeError):
+        return False
+    return bool(media) and all(Path(m.display_name).stem in names for m in media)
+
+
+def _not_the_demos(root) -> KinemarkError:
+    return KinemarkError(f"{root} already holds a project that is not the demo's: the demo adds its invented "
+                         "clips, model proposals and simulated labels, so it only reuses its own project. "
+                         "Choose another folder with --out")
+
+
 def build_project(root: Path, clips_dir: Path, *, every: int, progress=None):
     from . import ops
     from .media import Sampling
@@ -207,9 +230,14 @@ def build_project(root: Path, clips_dir: Path, *, every: int, progress=None):
     from .skeleton import COCO17
     from .store import DB_NAME
     if (Path(root) / DB_NAME).exists():
-        return Project.open(root), False
+        p = Project.open(root)
+        if not is_demo_project(p):
+            p.close()
+            raise _not_the_demos(root)
+        return p, False
     p = Project.create(root, COCO17, owner="lead-qb")
     try:
+        p.store.set_meta(DEMO_MARK, "quillon-bay")
         p.store.add_user(ANNOTATOR, "annotator", by=p.user().id)
         p.store.add_user(REVIEWER, "reviewer", by=p.user().id)
         scenario = json.loads((Path(clips_dir) / "scenario.json").read_text())
@@ -235,6 +263,20 @@ def run_demo(root: Path, *, clips_dir: Path | None = None, size: str = "demo", s
     bar = progress_factory or (lambda: None)
     root = Path(root)
     clips_dir = Path(clips_dir) if clips_dir else root / "clips"
+    if int(every) < 1:
+        raise KinemarkError(f"--every must be at least 1 (every sampled frame), not {every}")
+    if int(label) < 0:
+        raise KinemarkError(f"--label must be 0 or more frames, not {label}")
+    if root.exists() and not root.is_dir():
+        raise KinemarkError(f"--out {root} is a file, not a folder")
+    if clips_dir.exists() and not clips_dir.is_dir():
+        raise KinemarkError(f"--clips {clips_dir} is a file, not a folder")
+    from .store import DB_NAME
+    if (root / DB_NAME).exists():       # refuse a person's own project before rendering into it
+        from .project import Project
+        with Project.open(root) as existing:
+            if not is_demo_project(existing):
+                raise _not_the_demos(root)
     t = {}
     t0 = time.perf_counter()
     say(f"[1/6] scenario clips in {clips_dir}")

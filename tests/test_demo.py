@@ -34,6 +34,35 @@ def test_rerun_continues_with_the_next_frames(demo):
     assert again.accepted == 13 and again.frames == demo.frames
 
 
+def test_demo_never_reuses_a_project_it_did_not_build(tmp_path, video):
+    """Pointed at a team's own project, the demo refuses before rendering a clip or proposing
+    a frame into it."""
+    import hashlib
+    from kinemark.core.errors import KinemarkError
+    from kinemark.core.ops import add_media
+    from kinemark.core.project import Project
+    from kinemark.core.store import DB_NAME
+    p = Project.create(tmp_path / "study", COCO17, owner="ra1")
+    add_media(p, [video])
+    p.close()
+    before = hashlib.sha256((tmp_path / "study" / DB_NAME).read_bytes()).hexdigest()
+    with pytest.raises(KinemarkError, match="not the demo's"):
+        run_demo(tmp_path / "study", size="tiny", label=2, every=2, say=lambda *a: None)
+    assert not (tmp_path / "study" / "clips").exists()
+    with Project.open(tmp_path / "study") as again:
+        assert again.store.proposal_count() == 0
+    assert hashlib.sha256((tmp_path / "study" / DB_NAME).read_bytes()).hexdigest() == before
+
+
+@pytest.mark.parametrize("args, msg", [({"every": 0}, "--every"), ({"label": -5}, "--label")])
+def test_demo_arguments_are_checked_before_any_work(tmp_path, args, msg):
+    from kinemark.core.errors import KinemarkError
+    kw = {"size": "tiny", "label": 2, "every": 2, **args}
+    with pytest.raises(KinemarkError, match=msg):
+        run_demo(tmp_path / "d", say=lambda *a: None, **kw)
+    assert not (tmp_path / "d").exists()
+
+
 def test_simulated_annotator_fixes_what_needs_a_move():
     rng = np.random.default_rng(0)
     truth = np.column_stack([np.linspace(100, 200, 17), np.linspace(50, 300, 17), np.full(17, 2.0)])
