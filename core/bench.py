@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .errors import KinemarkError
 from .model import ACCEPTED
 from .skeleton import COCO17
 
@@ -92,6 +93,10 @@ def bench_open(n: int = 100_000):
 
 
 def run(what: str, args=None):
+    for opt in ("frames", "seconds", "cases"):
+        v = getattr(args, opt, None)
+        if v is not None and not (np.isfinite(v) and v > 0):
+            raise KinemarkError(f"--{opt} must be above 0, not {v}")
     n = getattr(args, "frames", None)
     if what in ("export", "all"):
         bench_export(n or 10_000)
