@@ -67,7 +67,7 @@ class SamplingDialog(QDialog):
                                                       QRadioButton("one frame every"),
                                                       QRadioButton("in all"))
         self.every = QSpinBox(); self.every.setRange(1, 100000); self.every.setValue(5)
-        self.seconds = QDoubleSpinBox(); self.seconds.setRange(0.01, 3600); self.seconds.setValue(0.5)
+        self.seconds = QDoubleSpinBox(); self.seconds.setRange(0.1, 3600); self.seconds.setValue(0.5)
         self.seconds.setDecimals(2)
         self.count = QSpinBox(); self.count.setRange(1, 1000000); self.count.setValue(50)
         for r, (radio, box, unit) in enumerate(((self.r_every, self.every, "frames"),

@@ -61,7 +61,7 @@ def cmd_new(a):
 
 def cmd_add(a):
     from . import ops
-    from .media import Sampling
+    from .media import Sampling, display_name
     sampling = Sampling(every=a.every, seconds=a.seconds, count=a.count)
     if a.every is None and a.seconds is None and a.count is None:
         sampling = Sampling(every=1)
@@ -73,8 +73,12 @@ def cmd_add(a):
             print(f"added {path} as media {mid}: {n} frames ({sampling.describe()})")
         for path, other in rep.duplicates:
             print(f"skipped {path}: already in the project as {other} (same checksum)")
-        if rep.skipped:
-            print(f"skipped {len(rep.skipped)} file(s) that are neither images nor videos")
+        not_media = [path for path, why in rep.skipped if why == ops.NOT_MEDIA]
+        if not_media:
+            print(f"skipped {len(not_media)} file(s) that are neither images nor videos")
+        for path, why in rep.skipped:
+            if why != ops.NOT_MEDIA:
+                print(f"skipped {display_name(path)}: {why}")
         for path, msg in rep.failed:
             print(f"failed: {msg}")
         print(changes.message)
@@ -118,7 +122,7 @@ def cmd_export(a):
         return
     with _open(a.dir) as p:
         ch = ops.export_coco(p, a.out, states=a.states, fmt=a.format, images_to=a.images_to,
-                             progress=ProgressBar())
+                             progress=ProgressBar(), overwrite=a.overwrite)
     print(ch.message)
 
 
@@ -149,11 +153,14 @@ def cmd_agreement(a):
         if a.pick:
             print(agreement.choose_frames(p, share=a.share, seed=a.seed, user=a.user).message)
             return
+        if a.html or a.csv:     # checked before any work: a refused path stops the command here
+            from .report import report_paths
+            paths = report_paths(a.html, a.csv, project=p, overwrite=a.overwrite)
         rep = agreement.build_report(p)
     print(agreement.format_text(rep))
     if a.html or a.csv:
         from .report import write_report
-        h, c = write_report(rep, a.html, a.csv)
+        h, c = write_report(rep, *paths, overwrite=a.overwrite)
         for path in (h, c):
             if path is not None:
                 print(f"wrote {path}")
@@ -174,7 +181,8 @@ def cmd_import(a):
 def cmd_relink(a):
     from . import ops
     with _open(a.dir) as p:
-        print(ops.relink(p, a.media, a.path, user=a.user).message)
+        print(ops.relink(p, a.media, a.path, accept_changed_pixels=a.accept_changed_pixels,
+                         user=a.user).message)
 
 
 def cmd_propose(a):
@@ -303,6 +311,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seed", type=int, help="bundle: seed of the participant split (default 0)")
     s.add_argument("--deidentify", action="store_true",
                    help="bundle: blur faces, pseudonymous names, no original names, paths or dates")
+    s.add_argument("--overwrite", action="store_true",
+                   help="replace an existing OUT file and frame files in --images-to (default: refuse); "
+                        "a bundle always needs a new or empty folder")
     s.set_defaults(fn=cmd_export)
 
     s = sub.add_parser("check", help="run the QA checks and print their flags")
@@ -321,6 +332,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--pick", action="store_true", help="choose the frames for double labelling, then stop")
     s.add_argument("--share", type=float, default=0.10, help="with --pick: share of frames (default 0.10)")
     s.add_argument("--seed", type=int, default=0, help="with --pick: seed of the choice (default 0)")
+    s.add_argument("--overwrite", action="store_true",
+                   help="replace an existing report page or CSV (default: refuse)")
     s.set_defaults(fn=cmd_agreement)
 
     s = sub.add_parser("import-coco", help="import a COCO keypoints file")
@@ -338,6 +351,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("dir")
     s.add_argument("media", type=int, help="media id (see 'kinemark info')")
     s.add_argument("path", nargs="?", help="new location of the file")
+    s.add_argument("--accept-changed-pixels", action="store_true",
+                   help="accept a file whose frames decode to different pixels, such as a re-encoded copy "
+                        "of the same recording (compare a few frames first)")
     s.set_defaults(fn=cmd_relink)
 
     s = sub.add_parser("propose", help="pre-fill frames with the pose model (resumable)")

@@ -22,15 +22,24 @@ are replaced by pseudonyms; no original file name, folder, frame time or capture
 written; pixels are re-encoded as PNG without metadata. The mapping back to the
 project is kept only in the project's own event log. Automatic de-identification is a
 help, not a guarantee: a person must check the bundle.
+
+Every export (the bundle, ``kinemark export``'s COCO file and frames, the agreement
+report) checks where it writes before any work (:class:`Targets`: never onto the
+project's database or its media, an existing file only when asked to) and writes all
+or nothing (:class:`Staged`: temporary names beside the targets, moved into place at
+the end), so a failed export leaves neither a partial folder nor a half-written file.
 """
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import importlib.util
 import io
 import json
 import os
 import secrets
+import shutil
+import tempfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -232,20 +241,256 @@ class _Bundle:
             self.files[p.relative_to(self.root).as_posix()] = (hashlib.sha256(data).hexdigest(), len(data))
 
 
-def _prepare_folder(out: Path) -> Path:
-    out = Path(out)
+# ---- where an export may write, and writing all or nothing ---------------------------------------
+
+DB_JOURNALS = ("-wal", "-shm", "-journal")
+
+
+class Targets:
+    """The checks every export runs on the paths it was given, before any work.
+
+    Refused, whatever the options: the project's database and its journal files, its
+    team settings, and every media file the project references (the export is made from
+    them; writing onto one destroys the project or a source video); a folder given where
+    a file is meant and the reverse; two outputs of one export on the same path; a path
+    whose folder is missing together with the folder above it (one missing folder is
+    created, as the exports have always done for a new output folder; a deeper missing
+    path is usually a typo). An existing file is replaced only with ``overwrite``.
+    Paths are compared after resolving links, and by device and inode for files that
+    exist, so a link or a second name for the database is caught as well.
+    """
+
+    def __init__(self, project=None):
+        self.protected: dict[Path, str] = {}
+        self.inodes: dict[tuple[int, int], str] = {}
+        self.claimed: set[Path] = set()
+        if project is None:
+            return
+        from .project import TEAM_FILE
+        from .store import DB_NAME
+        db = project.root / DB_NAME
+        self._protect(db, "the project's database (writing onto it would destroy the project)")
+        for suffix in DB_JOURNALS:
+            self._protect(db.with_name(db.name + suffix), "a journal file of the project's database")
+        self._protect(project.root / TEAM_FILE, "the project's team settings")
+        for m in project.store.all_media():
+            try:
+                path = project.media_path(m)
+            except KinemarkError:
+                continue
+            self._protect(path, f"media {m.id} of the project, a source {m.kind}")
+
+    def _protect(self, path: Path, why: str):
+        self.protected[Path(os.path.realpath(path))] = why
+        try:
+            st = os.stat(path)
+        except OSError:
+            return
+        self.inodes[(st.st_dev, st.st_ino)] = why
+
+    def _refuse_protected(self, path: Path):
+        why = self.protected.get(Path(os.path.realpath(path)))
+        if why is None:
+            try:
+                st = os.stat(path)
+            except OSError:
+                st = None
+            if st is not None:
+                why = self.inodes.get((st.st_dev, st.st_ino))
+        if why is not None:
+            raise KinemarkError(f"refused to write here: this is {why}", where=str(path))
+
+    def _claim(self, path: Path):
+        real = Path(os.path.realpath(path))
+        if real in self.claimed:
+            raise KinemarkError("two outputs of this export would be the same path", where=str(path))
+        self.claimed.add(real)
+
+    @staticmethod
+    def _check_parent(path: Path):
+        parent = path.parent
+        if parent.is_dir():
+            return
+        if parent.exists() or parent.is_symlink():
+            raise KinemarkError("cannot write here: the folder to write into is not a folder", where=str(parent))
+        if not parent.parent.is_dir():
+            raise KinemarkError("the folder to write into does not exist, nor does the folder above it; "
+                                "create it first", where=str(parent))
+
+    def file(self, path, *, overwrite: bool) -> Path:
+        """Check an output file (the COCO file, the report page, its CSV)."""
+        path = Path(path)
+        self._refuse_protected(path)
+        if path.is_dir():
+            raise KinemarkError("this is a folder; give the name of a file to write", where=str(path))
+        if path.exists() or path.is_symlink():
+            if not overwrite:
+                raise KinemarkError("the file exists; choose a new name, or add --overwrite to replace it",
+                                    where=str(path))
+            if path.exists() and not path.is_file():
+                raise KinemarkError("cannot write here: this is not a regular file", where=str(path))
+        self._check_parent(path)
+        self._claim(path)
+        return path
+
+    def folder(self, path, *, what: str) -> Path:
+        """Check an output folder (``what`` names the option, for the message)."""
+        path = Path(path)
+        self._refuse_protected(path)
+        if (path.exists() or path.is_symlink()) and not path.is_dir():
+            raise KinemarkError(f"{what} names a folder, and this is a file", where=str(path))
+        self._check_parent(path)
+        self._claim(path)
+        return path
+
+    def files_in(self, folder: Path, names, *, overwrite: bool):
+        """Check the files an export will put into ``folder``: never through a link (a link
+        planted under a frame's name could lead the export to a file outside the folder),
+        never onto a folder or a protected file, and onto an existing file only with ``overwrite``."""
+        existing = []
+        for name in names:
+            p = folder / name
+            if p.is_symlink():
+                raise KinemarkError("refused to write through a symbolic link", where=str(p))
+            self._refuse_protected(p)
+            self._claim(p)
+            if p.exists():
+                if not p.is_file():
+                    raise KinemarkError("cannot write a frame here: this is not a regular file", where=str(p))
+                existing.append(p)
+        if existing and not overwrite:
+            raise KinemarkError(f"{len(existing)} of the files to write exist already (the first: "
+                                f"{existing[0].name}); choose a new or empty folder, or add --overwrite",
+                                where=str(folder))
+
+
+class Staged:
+    """Output files and folders, written under temporary names beside their targets and
+    moved into place only by :meth:`commit`, at the very end of an export.
+
+    Leaving the ``with`` block by an exception (a frame that fails its checksum, a full
+    disk, Ctrl-C) removes every temporary file and folder and any folder it created, so
+    a failed export leaves the disk as it was, and a retry starts from a clean state. A
+    new folder is built as a hidden sibling and renamed into place in one step; files
+    for an existing folder are built in a hidden folder inside it and moved in one by one.
+    """
+
+    def __init__(self):
+        self._files: list[tuple[Path, Path]] = []      # (temporary, target)
+        self._folders: list[tuple[Path, Path]] = []    # (staging folder, target)
+        self._made: list[Path] = []                    # folders created for a target
+        self._done = False
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is not None or not self._done:
+            self.discard()
+
+    def _parent(self, path: Path) -> Path:
+        parent = path.parent
+        if not parent.is_dir():
+            try:
+                parent.mkdir(mode=0o700)
+            except OSError as e:
+                raise KinemarkError(f"cannot create the folder: {e.strerror}", where=str(parent)) from None
+            self._made.append(parent)
+        return parent
+
+    def file(self, path: Path, data: str | bytes):
+        """Write ``data`` (readable by the user only) to a temporary file beside ``path``, flushed to disk."""
+        path = Path(path)
+        parent = self._parent(path)
+        try:
+            fd, tmp = tempfile.mkstemp(dir=parent, prefix=f".{path.name}.", suffix=".partial")
+        except OSError as e:
+            raise KinemarkError(f"cannot write: {e.strerror}", where=str(path)) from None
+        self._files.append((Path(tmp), path))
+        text = not isinstance(data, bytes)
+        try:
+            with os.fdopen(fd, "w" if text else "wb", encoding="utf-8" if text else None) as f:
+                os.fchmod(f.fileno(), 0o600)
+                f.write(data)
+                f.flush()
+                os.fsync(f.fileno())
+        except OSError as e:
+            raise KinemarkError(f"cannot write: {e.strerror}", where=str(path)) from None
+
+    @staticmethod
+    def put(stage: Path, name: str, data: bytes):
+        """Write a file (readable by the user only) under its final ``name`` into a staging
+        folder from :meth:`folder`: the folder as a whole is what is moved into place."""
+        p = stage / name
+        flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_NOFOLLOW", 0)
+        try:
+            with os.fdopen(os.open(str(p), flags, 0o600), "wb") as f:
+                os.fchmod(f.fileno(), 0o600)
+                f.write(data)
+        except OSError as e:
+            raise KinemarkError(f"cannot write: {e.strerror}", where=str(p)) from None
+
+    def folder(self, path: Path) -> Path:
+        """A private staging folder whose contents :meth:`commit` moves into ``path``."""
+        path = Path(path)
+        base = path if path.is_dir() else self._parent(path)
+        prefix = ".kinemark-partial-" if path.is_dir() else f".{path.name}.partial-"
+        try:
+            stage = Path(tempfile.mkdtemp(dir=base, prefix=prefix))
+            os.chmod(stage, 0o700)
+        except OSError as e:
+            raise KinemarkError(f"cannot write: {e.strerror}", where=str(path)) from None
+        self._folders.append((stage, path))
+        return stage
+
+    def commit(self):
+        """Move everything into place: folders first, then files (a COCO file names its frames)."""
+        try:
+            for stage, target in self._folders:
+                if not target.exists():
+                    os.rename(stage, target)
+                    continue
+                for entry in sorted(stage.iterdir(), key=lambda q: (q.name == "manifest.json", q.name)):
+                    os.replace(entry, target / entry.name)
+                stage.rmdir()
+            for tmp, target in self._files:
+                os.replace(tmp, target)
+        except OSError as e:
+            raise KinemarkError(f"cannot move the export into place: {e.strerror}",
+                                where=str(e.filename or "")) from None
+        self._done = True
+
+    def discard(self):
+        for tmp, _ in self._files:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+        for stage, _ in self._folders:
+            shutil.rmtree(stage, ignore_errors=True)
+        for folder in reversed(self._made):
+            with contextlib.suppress(OSError):
+                folder.rmdir()      # only if still empty
+        self._files, self._folders, self._made = [], [], []
+
+
+def _check_bundle_folder(targets: Targets, out: Path) -> Path:
+    out = targets.folder(Path(out), what="the export bundle")
     if out.exists():
-        if not out.is_dir():
-            raise KinemarkError("the export bundle goes into a folder, and this is a file", where=str(out))
         if any(out.iterdir()):
             raise KinemarkError("the export folder is not empty; choose a new or empty folder", where=str(out))
-    else:
-        if out.suffix.lower() == ".json":
-            raise KinemarkError("a bundle is a folder, not a .json file (drop --split/--seed/--deidentify/"
-                                "--bundle to write a single COCO file)", where=str(out))
-        out.mkdir(mode=0o700, parents=True)
-    os.chmod(out, 0o700)
+    elif out.suffix.lower() == ".json":
+        raise KinemarkError("a bundle is a folder, not a .json file (drop --split/--seed/--deidentify/"
+                            "--bundle to write a single COCO file)", where=str(out))
     return out
+
+
+def nothing_to_export(project, states) -> str:
+    """Why an export of ``states`` is empty, with what the project does hold."""
+    counts = dict(project.store.state_counts())
+    blank = counts.pop("blank", 0)
+    held = [f"{n} {s}" for s, n in counts.items() if n]
+    if blank:
+        held.append(f"{blank} frame(s) with no annotation")
+    return f"no annotation is {' or '.join(states)} (the project has {', '.join(held) or 'no frames'})"
 
 
 def _png(img: np.ndarray) -> bytes:
@@ -264,8 +509,11 @@ def parquet_available() -> bool:
 def export_bundle(project, out, *, states=(ACCEPTED,), ratios=DEFAULT_RATIOS, seed: int = 0,
                   deidentify: bool = False, margin: float = DEFAULT_MARGIN, user=None,
                   progress=None) -> Changes:
-    """Write an export bundle (see the module docstring) into the new or empty folder ``out``."""
-    from .review import authorships, reviewer_of
+    """Write an export bundle (see the module docstring) into the new or empty folder ``out``.
+
+    All or nothing: the target is checked before any work (:class:`Targets`), the bundle is
+    built in a hidden staging folder and moved into ``out`` at the end; a failure (a frame
+    that fails its checksum, say) leaves ``out`` as it was."""
     states = list(states)
     bad = [s for s in states if s not in STATES]
     if bad or not states:
@@ -275,11 +523,24 @@ def export_bundle(project, out, *, states=(ACCEPTED,), ratios=DEFAULT_RATIOS, se
         raise KinemarkError("the blur margin must be zero or more")
     store, skel = project.store, project.skeleton
     who = project.user(user) if not hasattr(user, "role") else user
+    out = _check_bundle_folder(Targets(project), Path(out))
     rows = store.export_rows(states)
     if not rows:
-        raise KinemarkError(f"nothing to export: no annotation is {' or '.join(states)}")
-    out = _prepare_folder(Path(out))
-    b = _Bundle(out)
+        raise KinemarkError(f"nothing to export: {nothing_to_export(project, states)}")
+    with Staged() as staged:
+        # built in a hidden staging folder, moved into ``out`` only when complete
+        changes = _write_bundle(project, out, staged.folder(out), staged, rows, states=states, ratios=ratios,
+                                seed=seed, deidentify=deidentify, margin=margin, who=who, progress=progress)
+    return changes
+
+
+def _write_bundle(project, out, stage, staged, rows, *, states, ratios, seed, deidentify, margin, who,
+                  progress) -> Changes:
+    """The work of :func:`export_bundle`: every file goes into the staging folder ``stage``;
+    ``staged.commit()`` moves it into ``out`` once the manifest is written."""
+    from .review import authorships, reviewer_of
+    store, skel = project.store, project.skeleton
+    b = _Bundle(stage)
     names = list(skel.keypoints)
 
     media = {m.id: m for m in store.all_media()}
@@ -452,7 +713,11 @@ def export_bundle(project, out, *, states=(ACCEPTED,), ratios=DEFAULT_RATIOS, se
         audit["pseudonyms"] = {"frames": {str(f): n for f, n in frame_name.items()},
                                "participants": part_name,
                                "staff": {str(u): n for u, n in staff_name.items()}}
+    # the mapping back to the project is logged before the bundle is moved into place, so no
+    # de-identified bundle exists without it
     store.log_event("export", "bundle", None, None, audit, user_id=who.id)
+    staged.commit()
+    os.chmod(out, 0o700)
 
     msg = (f"wrote {len(rows)} annotations on {len(frame_ids)} images of {len(keys)} participant(s) to {out} "
            f"(" + ", ".join(f"{s} {c['participants']}/{c['images']}" for s, c in counts.items())

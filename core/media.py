@@ -10,6 +10,7 @@ sequential decode when it does not match.
 from __future__ import annotations
 
 import hashlib
+import math
 import os
 import threading
 from collections import OrderedDict
@@ -22,10 +23,44 @@ import numpy as np
 
 from .errors import KinemarkError
 
+# FFmpeg (inside OpenCV) prints its own complaints on stderr when a file is probed, e.g.
+# "moov atom not found" for a truncated mp4, before Kinemark's own one-line error about the
+# same file. OpenCV reads this setting once, when it first uses FFmpeg, and has no call to
+# change FFmpeg's log level later (cv2.utils.logging does not reach it), so it is set here,
+# before any capture is opened. -8 is FFmpeg's "quiet"; a value already in the environment
+# wins, so OPENCV_FFMPEG_LOGLEVEL=32 brings FFmpeg's messages back for debugging a codec.
+os.environ.setdefault("OPENCV_FFMPEG_LOGLEVEL", "-8")
+
 VIDEO_EXTENSIONS = {".mp4", ".m4v", ".mov", ".avi", ".mkv", ".webm", ".mpg", ".mpeg", ".wmv"}
 IMAGE_EXTENSIONS = {".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp"}
 
 Progress = Callable[[int, int, str], None] | None
+
+MAX_FPS = 10000              # a frame rate above this is a broken header, not a camera
+MAX_FRAMES = 1_000_000_000   # more frames than any recording has (a year at 30 fps)
+
+
+def display_name(path: str | Path) -> str:
+    """A path as printable text: bytes of the name that are not UTF-8 shown as ``\\xff`` escapes."""
+    return os.fsencode(str(path)).decode("utf-8", "backslashreplace")
+
+
+def check_name(path: str | Path) -> None:
+    """Refuse a file name that is not valid UTF-8, before OpenCV sees it.
+
+    OpenCV's VideoCapture crashes the whole process (a segfault) on such a name,
+    and the project database stores paths as UTF-8 text; renaming the file is
+    the way out, so it is a user error.
+    """
+    try:
+        str(path).encode("utf-8")
+    except UnicodeEncodeError:
+        raise KinemarkError("the file name is not valid UTF-8 text, which OpenCV and the project "
+                            "database cannot handle; rename the file", where=display_name(path)) from None
+
+
+def _whole(x) -> bool:
+    return isinstance(x, int) and not isinstance(x, bool)
 
 
 def file_sha256(path: str | Path, chunk: int = 1 << 20) -> str:
@@ -54,15 +89,26 @@ class Sampling:
     count: int | None = None
 
     def __post_init__(self):
+        """Refuse a rule that cannot sample: not a number, not finite, or below one frame.
+
+        An interval of ``1e-300`` s would loop for ever and ``inf`` overflows, so
+        seconds must be finite and at least one frame at the highest frame rate a
+        probe accepts; :meth:`indices` checks it against the video's own rate.
+        """
         given = [x for x in (self.every, self.seconds, self.count) if x is not None]
         if len(given) > 1:
             raise KinemarkError("choose one sampling rule: every N frames, every T seconds, or K frames")
-        if self.every is not None and self.every < 1:
-            raise KinemarkError("--every must be a whole number of frames ≥ 1")
-        if self.seconds is not None and not self.seconds > 0:
-            raise KinemarkError("--seconds must be a positive number")
-        if self.count is not None and self.count < 1:
-            raise KinemarkError("--count must be ≥ 1")
+        if self.every is not None and not (_whole(self.every) and 1 <= self.every <= MAX_FRAMES):
+            raise KinemarkError(f"--every must be a whole number of frames from 1 to {MAX_FRAMES:,}")
+        if self.seconds is not None:
+            try:
+                ok = math.isfinite(self.seconds) and self.seconds >= 1 / MAX_FPS
+            except TypeError:
+                ok = False
+            if not ok:
+                raise KinemarkError(f"--seconds must be a finite number of seconds, at least {1 / MAX_FPS:g}")
+        if self.count is not None and not (_whole(self.count) and 1 <= self.count <= MAX_FRAMES):
+            raise KinemarkError(f"--count must be a whole number of frames from 1 to {MAX_FRAMES:,}")
 
     def indices(self, frame_count: int, fps: float | None) -> list[int]:
         if frame_count <= 0:
@@ -76,6 +122,9 @@ class Sampling:
             if not fps or fps <= 0:
                 raise KinemarkError("this video reports no frame rate, so it cannot be sampled by seconds; "
                                     "use --every or --count")
+            if self.seconds * fps < 1 - 1e-9:
+                raise KinemarkError(f"a frame every {self.seconds:g} s is less than one frame of this "
+                                    f"{fps:g} fps video ({1 / fps:.4g} s); use --every 1 to keep every frame")
             out, t = [], 0.0
             while True:
                 idx = int(round(t * fps))
@@ -109,6 +158,7 @@ class Probe:
 
 
 def _check_readable(path: Path):
+    check_name(path)
     if not path.exists():
         raise KinemarkError("file not found", where=str(path))
     if not path.is_file():
@@ -144,12 +194,23 @@ def probe_image(path: Path) -> Probe:
 
 
 def _open_capture(path: Path) -> cv2.VideoCapture:
+    check_name(path)        # OpenCV segfaults on a name that is not UTF-8
     cap = cv2.VideoCapture(str(path))
     if not cap.isOpened():
         cap.release()
         raise KinemarkError("cannot open as a video (unsupported format, or the file is corrupt "
                             "or truncated)", where=str(path))
     return cap
+
+
+def _sample(sampling: Sampling, frame_count: int, fps: float | None, path: Path) -> list[int]:
+    """``sampling.indices``, with a refusal naming the file (a folder add has many)."""
+    try:
+        return sampling.indices(frame_count, fps)
+    except KinemarkError as e:
+        if e.where is not None:
+            raise
+        raise KinemarkError(str(e), where=str(path)) from None
 
 
 def probe_video(path: Path, sampling: Sampling, progress: Progress = None) -> Probe:
@@ -162,12 +223,12 @@ def probe_video(path: Path, sampling: Sampling, progress: Progress = None) -> Pr
     cap = _open_capture(path)
     try:
         fps = cap.get(cv2.CAP_PROP_FPS) or None
-        if fps is not None and not (0 < fps < 10000):
+        if fps is not None and not (0 < fps < MAX_FPS):
             fps = None
         header_count = int(cap.get(cv2.CAP_PROP_FRAME_COUNT) or 0)
         # Which frames to checksum: we only know the true count after decoding, so
         # decode once, keep checksums of every candidate index, then sample.
-        wanted = set(sampling.indices(header_count, fps)) if header_count > 0 else None
+        wanted = set(_sample(sampling, header_count, fps, path)) if header_count > 0 else None
         shas: dict[int, str] = {}
         width = height = 0
         n = 0
@@ -192,7 +253,7 @@ def probe_video(path: Path, sampling: Sampling, progress: Progress = None) -> Pr
     if header_count > 0 and n < 0.9 * header_count - 1:
         raise KinemarkError(f"the video looks truncated: its header says {header_count} frames "
                             f"but only {n} decode", where=str(path))
-    indices = sampling.indices(n, fps)
+    indices = _sample(sampling, n, fps, path)
     missing = [i for i in indices if i not in shas]
     if missing:
         # header count was off: decode again for the frames we did not keep

@@ -17,7 +17,7 @@ import cv2
 
 from . import coco
 from .errors import KinemarkError
-from .media import (Probe, Sampling, list_image_folder, media_kind, probe_image, probe_video,
+from .media import (Probe, Sampling, check_name, list_image_folder, media_kind, probe_image, probe_video,
                     file_sha256)
 from .model import ACCEPTED, IN_REVIEW, STATES, Changes
 from .project import Project
@@ -49,17 +49,34 @@ class AddReport:
     failed: list           # (path, message) files that could not be imported
 
 
+NOT_MEDIA = "not an image or video"
+BAD_NAME = "its name is not valid UTF-8 text (rename the file)"
+MAX_SESSION = 1_000_000
+
+
 def _expand(paths: Iterable[Path]) -> tuple[list[Path], list]:
+    """The files to import, and the folder entries skipped with a reason.
+
+    A media file in a folder whose name is not UTF-8 is skipped (OpenCV would
+    crash on it, see :func:`.media.check_name`); a file named on its own is
+    refused later, like any other unreadable file.
+    """
     files, skipped = [], []
     for p in paths:
         p = Path(p)
         if p.is_dir():
+            check_name(p)
             imgs, other = list_image_folder(p)
             vids = [o for o in other if media_kind(o) == "video"]
             if not imgs and not vids:
                 raise KinemarkError("the folder holds no images or videos", where=str(p))
-            files.extend(imgs + vids)
-            skipped.extend((o, "not an image or video") for o in other if media_kind(o) is None)
+            for f in imgs + vids:
+                try:
+                    check_name(f)
+                    files.append(f)
+                except KinemarkError:
+                    skipped.append((f, BAD_NAME))
+            skipped.extend((o, NOT_MEDIA) for o in other if media_kind(o) is None)
         else:
             files.append(p)
     return files, skipped
@@ -81,6 +98,9 @@ def add_media(project: Project, paths: Iterable, *, participant: str | None = No
         raise KinemarkError("nothing to add")
     if session is not None and not participant:
         raise KinemarkError("--session needs --participant")
+    if session is not None and not (isinstance(session, int) and not isinstance(session, bool)
+                                    and 1 <= session <= MAX_SESSION):
+        raise KinemarkError(f"--session must be a whole number from 1 to {MAX_SESSION:,}, not {session}")
     report = AddReport([], [], skipped, [])
     # Phase 1: read and check every file; nothing is written yet.
     probed = []
@@ -88,6 +108,7 @@ def add_media(project: Project, paths: Iterable, *, participant: str | None = No
     for n, path in enumerate(files):
         _tick(progress, n, len(files), f"reading {path.name}")
         try:
+            check_name(path)          # before any message or OpenCV call uses the name
             kind = media_kind(path)
             if kind is None:
                 raise KinemarkError(f"unsupported file type {path.suffix or '(none)'!r}; videos: "
@@ -126,44 +147,92 @@ def add_media(project: Project, paths: Iterable, *, participant: str | None = No
     msg = f"added {len(report.added)} media ({len(frame_ids)} frames)"
     if report.duplicates:
         msg += f", {len(report.duplicates)} already in the project"
-    if report.skipped:
-        msg += f", skipped {len(report.skipped)} non-media file(s)"
+    not_media = sum(1 for _, why in report.skipped if why == NOT_MEDIA)
+    if not_media:
+        msg += f", skipped {not_media} non-media file(s)"
+    bad_names = sum(1 for _, why in report.skipped if why == BAD_NAME)
+    if bad_names:
+        msg += f", skipped {bad_names} media file(s) whose names are not valid UTF-8"
     if report.failed:
         msg += f", {len(report.failed)} failed"
     return Changes(media=tuple(media_ids), frames=tuple(frame_ids), message=msg), report
 
 
+def _same_recording(media, probe: Probe, path: Path):
+    """Refuse a file whose frames cannot be the stored ones: other size, length or frame rate.
+
+    The stored keypoints are pixel positions on particular frames, so a file of
+    another size puts them at the wrong scale, and one of another length or frame
+    rate is another recording (or a cut of it). A re-encode or remux may gain or
+    lose a frame or two at the end, so the count may differ by 1% (at least 2 frames).
+    """
+    if (probe.width, probe.height) != (media.width, media.height):
+        raise KinemarkError(f"the new file's frames are {probe.width}x{probe.height}, not {media.width}x"
+                            f"{media.height} as imported: it is a different (or resized) video and the "
+                            f"keypoints would be at the wrong scale", where=str(path))
+    slack = max(2, round(0.01 * media.frame_count))
+    if abs(probe.frame_count - media.frame_count) > slack:
+        raise KinemarkError(f"the new file has {probe.frame_count} frames, not {media.frame_count} as "
+                            f"imported: it is a different (or cut) recording", where=str(path))
+    if media.fps and probe.fps and abs(probe.fps - media.fps) > 0.01 * media.fps:
+        raise KinemarkError(f"the new file runs at {probe.fps:g} fps, not {media.fps:g} as imported: it is "
+                            f"a different (or converted) recording", where=str(path))
+
+
 def relink(project: Project, media_id: int, new_path: str | Path | None = None, *,
-           user: str | None = None) -> Changes:
+           accept_changed_pixels: bool = False, user: str | None = None) -> Changes:
     """Accept the file now on disk (or at ``new_path``) for a media, re-checking every frame.
 
-    Refused if the new file no longer has the sampled frames.
+    Refused if the new file is not the same recording (:func:`_same_recording`),
+    lacks one of the sampled frames, or is already another media of the project.
+    A moved or copied file decodes to the same pixels and is accepted. A
+    re-encoded copy decodes to slightly different pixels, and checksums cannot
+    tell that from a different recording of the same size and length; so when
+    most sampled frames' pixels changed, the relink is refused unless
+    ``accept_changed_pixels`` (``--accept-changed-pixels``) says a person has
+    looked at the frames and confirms it. Nothing is written when refused.
     """
     who = project.user(user)
     media = project.store.media(media_id)
     path = Path(new_path) if new_path else project.media_path(media)
+    check_name(path)
     if not path.exists():
         raise KinemarkError("file not found", where=str(path))
+    kind = media_kind(path)
+    if kind is not None and kind != media.kind:
+        raise KinemarkError(f"the new file is {'an' if kind == 'image' else 'a'} {kind}, but this media is "
+                            f"{'an' if media.kind == 'image' else 'a'} {media.kind}", where=str(path))
     frames = project.store.frames(media_id)
     if media.kind == "image":
         probe = probe_image(path)
     else:
-        probe = probe_video(path, Sampling(every=1))
+        probe = probe_video(path, Sampling(every=1))      # checks the file is readable
+    sha = file_sha256(path)
+    other = project.store.media_by_sha(sha)
+    if other is not None and other.id != media_id:
+        raise KinemarkError(f"this file is already in the project as media {other.id} ({other.path})",
+                            where=str(path))
+    _same_recording(media, probe, path)
     shas = {}
     for f in frames:
         if f.frame_index not in probe.checksums:
             raise KinemarkError(f"the new file has no frame {f.frame_index}; it cannot replace this media",
                                 where=str(path))
         shas[f.frame_index] = probe.checksums[f.frame_index]
+    changed = sum(1 for f in frames if shas[f.frame_index] != f.pixel_sha)
+    if 2 * changed > len(frames) and not accept_changed_pixels:
+        raise KinemarkError(f"{changed} of {len(frames)} sampled frames decode to different pixels than at "
+                            f"import: this is a re-encoded copy or a different recording. Compare a few "
+                            f"frames; if it is the same recording, run again with --accept-changed-pixels",
+                            where=str(path))
     stored, base = project.stored_path(path)
     with project.store.tx():
         project.store.update_frame_checksums(media_id, shas, user_id=who.id)
-        project.store.set_media_status(media_id, "ok", sha256=file_sha256(path), path=stored,
+        project.store.set_media_status(media_id, "ok", sha256=sha, path=stored,
                                        path_base=base, user_id=who.id)
     src = project._sources.pop(media_id, None)
     if src:
         src.close()
-    changed = sum(1 for f in frames if shas[f.frame_index] != f.pixel_sha)
     return Changes(media=(media_id,), frames=tuple(f.id for f in frames),
                    message=f"relinked media {media_id}; {changed} of {len(frames)} frames' pixels changed")
 
@@ -234,68 +303,55 @@ def _check_states(states):
     return states
 
 
-def _write_private(path: Path, text: str | bytes, *, follow_links: bool = True):
-    """Write a file readable by the user only: the mode is set on the open file too, since
-    open(2) applies it only when it creates the file. ``follow_links=False``: refuse to
-    write through a symbolic link (O_NOFOLLOW), for names Kinemark chose, not the user."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    flags = os.O_WRONLY | os.O_CREAT | os.O_TRUNC | (0 if follow_links else getattr(os, "O_NOFOLLOW", 0))
-    try:
-        fd = os.open(str(path), flags, 0o600)
-    except OSError as e:
-        if not follow_links and path.is_symlink():
-            raise KinemarkError("refused to write through a symbolic link", where=str(path)) from None
-        raise KinemarkError(f"cannot write: {e.strerror}", where=str(path)) from None
-    os.fchmod(fd, 0o600)
-    if isinstance(text, bytes):
-        with os.fdopen(fd, "wb") as f:
-            f.write(text)
-    else:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-
-
 def export_coco(project: Project, out: str | Path, *, states=(ACCEPTED,), fmt: str = "coco",
                 images_to: str | Path | None = None, progress=None,
-                date_created: str | None = None) -> Changes:
+                date_created: str | None = None, overwrite: bool = True) -> Changes:
     """Write a COCO keypoints file (``fmt='coco'``) or a COCO results file (``'coco-results'``).
 
     Results are the stored model proposals for frames in ``states`` (or all
     proposed frames when ``states`` is empty), for scoring with the reference evaluator.
+
+    The paths are checked before any work (:class:`.export.Targets`: never onto the
+    project's database or its media; an existing file only with ``overwrite``, which
+    the command line asks for as ``--overwrite``). Everything is written under temporary
+    names and moved into place at the end (:class:`.export.Staged`): a frame that fails
+    its checksum leaves neither PNGs in ``images_to`` nor a half-written ``out``.
     """
-    out = Path(out)
+    from .export import Staged, Targets, nothing_to_export
     states = _check_states(states)
-    if fmt == "coco":
-        rows = project.store.export_rows(states)
-        data = coco.build_coco(rows, project.skeleton, date_created=date_created)
-        if images_to is not None:
-            images_to = Path(images_to)
-            images_to.mkdir(parents=True, exist_ok=True)
-            done = set()
-            for n, r in enumerate(rows):
-                frame_id, media_id, frame_index = r[1], r[6], r[7]
-                if frame_id in done:
-                    continue
-                done.add(frame_id)
-                img = project.read_frame(media_id, frame_index)
-                target = images_to / coco.frame_file_name(media_id, frame_index)
-                ok, png = cv2.imencode(".png", img)
-                if not ok:
-                    raise KinemarkError("cannot write image", where=str(target))
-                _write_private(target, png.tobytes(), follow_links=False)
-                _tick(progress, n + 1, len(rows), "writing frames")
-        _write_private(out, json.dumps(data))
-        msg = f"wrote {len(data['annotations'])} annotations on {len(data['images'])} images to {out}"
-    elif fmt == "coco-results":
-        wanted = None
-        if states:
-            wanted = {r[1] for r in project.store.export_rows(states)}
-        results = [coco.results_entry(p.frame_id, p.keypoints, p.score)
-                   for p in project.store.proposals() if wanted is None or p.frame_id in wanted]
-        _write_private(out, json.dumps(results))
-        msg = f"wrote {len(results)} model results to {out}"
-    else:
+    if fmt not in ("coco", "coco-results"):
         raise KinemarkError(f"unknown export format {fmt!r}; use coco or coco-results")
+    targets = Targets(project)
+    out = targets.file(Path(out), overwrite=overwrite)
+    rows = project.store.export_rows(states) if fmt == "coco" or states else []
+    frames = {r[1]: (r[6], r[7]) for r in rows}          # frame id -> (media id, frame index), in row order
+    if fmt == "coco" and images_to is not None:
+        images_to = targets.folder(Path(images_to), what="--images-to")
+        targets.files_in(images_to, [coco.frame_file_name(m, i) for m, i in frames.values()], overwrite=overwrite)
+    with Staged() as staged:
+        if fmt == "coco":
+            data = coco.build_coco(rows, project.skeleton, date_created=date_created)
+            if images_to is not None:
+                stage = staged.folder(images_to)
+                for n, (media_id, frame_index) in enumerate(frames.values()):
+                    img = project.read_frame(media_id, frame_index)
+                    name = coco.frame_file_name(media_id, frame_index)
+                    ok, png = cv2.imencode(".png", img)
+                    if not ok:
+                        raise KinemarkError("cannot write image", where=str(images_to / name))
+                    staged.put(stage, name, png.tobytes())
+                    _tick(progress, n + 1, len(frames), "writing frames")
+            staged.file(out, json.dumps(data))
+            msg = f"wrote {len(data['annotations'])} annotations on {len(data['images'])} images to {out}"
+            if not rows:
+                msg += f"; {nothing_to_export(project, states)}"
+        else:
+            wanted = set(frames) if states else None
+            results = [coco.results_entry(p.frame_id, p.keypoints, p.score)
+                       for p in project.store.proposals() if wanted is None or p.frame_id in wanted]
+            staged.file(out, json.dumps(results))
+            msg = f"wrote {len(results)} model results to {out}"
+        staged.commit()
     return Changes(message=msg, details={"path": str(out)})
 
 

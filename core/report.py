@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import html
 import io
-import os
 from pathlib import Path
 
 import numpy as np
@@ -129,24 +128,37 @@ def report_frame(rep: AgreementReport) -> pd.DataFrame:
     return pd.DataFrame(rep.rows(), columns=["section", "group", "keypoint", "measure", "value"])
 
 
-def _write_private(path: Path, data: bytes):
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd = os.open(str(path), os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
-    with os.fdopen(fd, "wb") as f:
-        f.write(data)
-    os.chmod(path, 0o600)
-
-
-def write_report(rep: AgreementReport, html_path, csv_path=None) -> tuple[Path | None, Path | None]:
-    """Write the HTML page and/or the CSV (by default the CSV goes beside the page)."""
+def report_paths(html_path, csv_path=None, *, project=None,
+                 overwrite: bool = True) -> tuple[Path | None, Path | None]:
+    """Where :func:`write_report` writes (by default the CSV goes beside the page), checked
+    before any work by :class:`.export.Targets`: never onto the project's database or its
+    media (with ``project``), never a folder, an existing file only with ``overwrite``."""
+    from .export import Targets
     html_path = Path(html_path) if html_path else None
     if csv_path is None and html_path is not None:
         csv_path = html_path.with_suffix(".csv")
     csv_path = Path(csv_path) if csv_path else None
-    if html_path is not None:
-        _write_private(html_path, render_html(rep).encode("utf-8"))
-    if csv_path is not None:
-        buf = io.StringIO()
-        report_frame(rep).to_csv(buf, index=False)
-        _write_private(csv_path, buf.getvalue().encode("utf-8"))
+    targets = Targets(project)
+    for path in (html_path, csv_path):
+        if path is not None:
+            targets.file(path, overwrite=overwrite)
+    return html_path, csv_path
+
+
+def write_report(rep: AgreementReport, html_path, csv_path=None, *, project=None,
+                 overwrite: bool = True) -> tuple[Path | None, Path | None]:
+    """Write the HTML page and/or the CSV (by default the CSV goes beside the page).
+
+    Both or neither: they are written under temporary names and moved into place together
+    (:class:`.export.Staged`), after the checks of :func:`report_paths`."""
+    from .export import Staged
+    html_path, csv_path = report_paths(html_path, csv_path, project=project, overwrite=overwrite)
+    with Staged() as staged:
+        if html_path is not None:
+            staged.file(html_path, render_html(rep).encode("utf-8"))
+        if csv_path is not None:
+            buf = io.StringIO()
+            report_frame(rep).to_csv(buf, index=False)
+            staged.file(csv_path, buf.getvalue().encode("utf-8"))
+        staged.commit()
     return html_path, csv_path

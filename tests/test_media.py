@@ -100,8 +100,12 @@ def test_changed_video_is_refused_until_relinked(project, tmp_path):
     assert p.store.media(mid).status == "changed"
     with pytest.raises(KinemarkError, match="relink"):
         p.read_frame(mid, 20)
-    msg = ops.relink(p, mid).message
-    assert "relinked" in msg and "frames' pixels changed" in msg
+    # same size, length and rate but other pixels: only with an explicit confirmation
+    with pytest.raises(KinemarkError, match="accept-changed-pixels"):
+        ops.relink(p, mid)
+    assert p.store.media(mid).status == "changed"
+    msg = ops.relink(p, mid, accept_changed_pixels=True).message
+    assert "relinked" in msg and "4 of 4 frames' pixels changed" in msg
     ref = _decode_all(v)
     np.testing.assert_array_equal(p.read_frame(mid, 20), ref[20])
     p.close()
