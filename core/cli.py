@@ -376,7 +376,7 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("claim", help="team mode: take a batch of frames from the queue as a lease")
     s.add_argument("dir")
     s.add_argument("--batch", type=int, default=20)
-    s.add_argument("--minutes", type=float, default=60.0, help="how long the lease lasts")
+    s.add_argument("--minutes", type=float, default=60.0, help="how long the lease lasts, in minutes (1 to 2160; default 60)")
     s.add_argument("--release", action="store_true", help="give back every frame you hold")
     s.set_defaults(fn=cmd_claim)
 

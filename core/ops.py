@@ -8,6 +8,7 @@ operations take ``progress(done, total, message)``; they raise
 from __future__ import annotations
 
 import json
+import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -467,6 +468,11 @@ def adapt(project: Project, *, with_embedding: bool = True, user: str | None = N
 
 # ---- team mode ----------------------------------------------------------------------------
 
+# how long a claimed batch may be kept from the rest of the team (a project choice: a working
+# day and a half at most, so a forgotten lease returns by the next morning)
+MIN_LEASE_MINUTES, MAX_LEASE_MINUTES = 1.0, 36 * 60.0
+
+
 def claim_batch(project: Project, n: int = 20, *, lease_minutes: float = 60.0, user: str | None = None):
     """Take the next ``n`` frames of the ranked queue as a lease, so nobody else gets them.
 
@@ -476,6 +482,9 @@ def claim_batch(project: Project, n: int = 20, *, lease_minutes: float = 60.0, u
     from .ranking import rank_queue
     if n < 1:
         raise KinemarkError("a batch needs at least one frame")
+    if not (math.isfinite(lease_minutes) and MIN_LEASE_MINUTES <= lease_minutes <= MAX_LEASE_MINUTES):
+        raise KinemarkError(f"--minutes must be from {MIN_LEASE_MINUTES:g} to {MAX_LEASE_MINUTES:g} (a lease "
+                            f"hides the frames from the rest of the team until it ends), not {lease_minutes:g}")
     who = project.user(user)
     want = n
     new, renewed = [], []

@@ -227,6 +227,18 @@ def test_expired_leases_return_to_the_pool(tmp_path):
     p.close()
 
 
+@pytest.mark.parametrize("minutes", [float("nan"), float("inf"), 0.0, -5.0, 1e9])
+def test_a_lease_length_must_be_sane(tmp_path, minutes):
+    """A NaN lease was a database error; 0, negative and endless ones were accepted (an endless
+    one hides its frames from the team for good)."""
+    p = Project.create(tmp_path / "solo", COCO17, owner="lead")
+    _frames(p, 3)
+    with pytest.raises(KinemarkError, match="--minutes must be from"):
+        ops.claim_batch(p, 2, lease_minutes=minutes)
+    assert p.store.claims() == {}                                    # nothing leased
+    p.close()
+
+
 def test_submit_and_accept_on_postgres(team):
     team.store.add_user("ra1", "annotator")
     team.store.add_user("rev", "reviewer")
