@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Iterable
 
 import cv2
+import numpy as np
 
 from . import coco
 from .errors import KinemarkError
@@ -422,9 +423,16 @@ def import_coco(project: Project, file: str | Path, images_root: str | Path, *, 
             frame_for_image[iid] = fids[0]
         per_frame: dict = {}
         K = project.skeleton.num_keypoints
+        already = 0
         for aid, iid, arr, bbox in plan.annotations:
             fid = frame_for_image.get(iid)
             if fid is None:
+                continue
+            # the same person's keypoints already on this frame (the file, or this record,
+            # imported before): importing them again would count one person twice
+            if any(a.keypoints.shape == np.shape(arr) and np.allclose(a.keypoints, arr, atol=1e-6)
+                   for a in store.annotations_on_frame(fid)):
+                already += 1
                 continue
             person = per_frame.get(fid, 0)
             while store.annotation(fid, person) is not None:
@@ -435,6 +443,8 @@ def import_coco(project: Project, file: str | Path, images_root: str | Path, *, 
             ann_ids.append(a.id)
     msg = (f"imported {len(ann_ids)} annotation{'s' * (len(ann_ids) != 1)} on {len(frame_for_image)} "
            f"image{'s' * (len(frame_for_image) != 1)}")
+    if already:
+        msg += f"; left out {already} annotation{'s' * (already != 1)} already in the project (same keypoints)"
     if plan.problems:
         msg += f"; skipped {len(plan.problems)} bad record(s)"
     if plan.notices:

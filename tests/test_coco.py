@@ -154,6 +154,23 @@ def _base_file(tmp_path, n_images=3):
     return root, {"images": images, "annotations": anns, "categories": cats}
 
 
+def test_importing_the_same_file_twice_adds_no_second_person(project, tmp_path):
+    root, data = _base_file(tmp_path)
+    f = tmp_path / "clinic.json"
+    f.write_text(json.dumps(data))
+    ch1, _ = ops.import_coco(project, f, root)
+    ch2, _ = ops.import_coco(project, f, root)
+    assert len(ch1.annotations) == 3 and ch2.annotations == ()
+    assert "already in the project" in ch2.message
+    assert len(project.store.annotations()) == 3
+    # a second, different person on an image is still a second person
+    data["annotations"].append({**data["annotations"][0], "id": 999,
+                                "keypoints": (np.array(data["annotations"][0]["keypoints"]) + [3, 2, 0] * 17).tolist()})
+    f.write_text(json.dumps(data))
+    ch3, _ = ops.import_coco(project, f, root)
+    assert len(ch3.annotations) == 1 and len(project.store.annotations()) == 4
+
+
 MESSY = {
     "unknown_image": (lambda d: d["annotations"][0].update(image_id=77), "annotation id 100.image_id"),
     "duplicate_ann_id": (lambda d: d["annotations"][1].update(id=100), "annotation id 100"),
