@@ -170,6 +170,9 @@ class FrameCanvas(QGraphicsView):
             if text != h.note:
                 h.note = text
                 h.setToolTip(text)
+                # a noted keypoint is drawn above its neighbours, so its badge is never hidden
+                # under another handle (the name label stays on top at 11)
+                h.setZValue(10.5 if text else 10)
                 h.update()
 
     def note_of(self, index: int) -> str:

@@ -23,11 +23,11 @@ class SnapshotCommand(QUndoCommand):
         if self._first:          # the edit itself was already made (and stored) before the push
             self._first = False
             return
-        if not self.window.restore_frames(self.after, expect=self.before, action="redo"):
+        if not self.window.restore_frames(self.after, expect=self.before, action="redo", what=self.text()):
             self.setObsolete(True)
 
     def undo(self):
-        if not self.window.restore_frames(self.before, expect=self.after, action="undo"):
+        if not self.window.restore_frames(self.before, expect=self.after, action="undo", what=self.text()):
             self.setObsolete(True)
 
 

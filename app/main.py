@@ -882,7 +882,7 @@ class MainWindow(QMainWindow):
         if ch.message:
             self.statusBar().showMessage(ch.message, 5000)
 
-    def restore_frames(self, target: dict, *, expect: dict, action: str) -> bool:
+    def restore_frames(self, target: dict, *, expect: dict, action: str, what: str = "") -> bool:
         if self.project is None:
             return False
         try:
@@ -893,11 +893,15 @@ class MainWindow(QMainWindow):
         if self.frame_id not in target and target:
             self.go(next(iter(target)))
         self.after_change(ch)
-        self.statusBar().showMessage(f"{action} done ({len(target)} frame(s))", 3000)
+        n = len(target)
+        done = {"undo": "undone", "redo": "redone"}.get(action, action + " done")
+        self.statusBar().showMessage(f"{done}: {what or 'the last change'}"
+                                     + (f" ({n} frames)" if n != 1 else ""), 4000)
         return True
 
     def _name(self, i=None) -> str:
-        return self.project.skeleton.keypoints[self.point if i is None else i]
+        """The keypoint's name in words (left_wrist -> left wrist), for messages and undo."""
+        return self.project.skeleton.keypoints[self.point if i is None else i].replace("_", " ")
 
     def _on_dragged(self, index: int, x: float, y: float):
         fid = self.frame_id

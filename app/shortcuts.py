@@ -163,8 +163,9 @@ class KeySheet(QDialog):
         self.setWindowTitle("Key sheet")
         self.resize(940, 680)
         lay = QVBoxLayout(self)
-        intro = QLabel("Kinemark is meant to be used from the keyboard. Double-click a command's keys "
-                       "to change them; changes are kept for next time.")
+        intro = QLabel("Kinemark is meant to be used from the keyboard. To change a command's keys, "
+                       "choose its row and press Enter (or double-click it), then press the new key; "
+                       "changes are kept for next time.")
         intro.setObjectName("muted")
         intro.setWordWrap(True)
         lay.addWidget(intro)
@@ -177,6 +178,7 @@ class KeySheet(QDialog):
         self.table.verticalHeader().setDefaultSectionSize(26)
         self.table.setWordWrap(True)
         self.table.cellDoubleClicked.connect(self._edit_row)
+        self.table.installEventFilter(self)      # Enter on a row starts changing its keys
         lay.addWidget(self.table)
         row = QHBoxLayout()
         self.editor = QKeySequenceEdit()
@@ -205,6 +207,19 @@ class KeySheet(QDialog):
             self.table.setItem(r, 2, QTableWidgetItem(c.help))
         self.table.resizeColumnToContents(0)
         self.table.resizeColumnToContents(1)
+        self.table.resizeRowsToContents()        # long help lines wrap instead of being cut off
+
+    def showEvent(self, event):
+        super().showEvent(event)
+        self.table.resizeRowsToContents()        # now that the help column has its width
+
+    def eventFilter(self, obj, event):
+        from PySide6.QtCore import QEvent
+        if obj is self.table and event.type() == QEvent.KeyPress and \
+                event.key() in (Qt.Key_Return, Qt.Key_Enter) and self.table.currentRow() >= 0:
+            self._edit_row(self.table.currentRow(), 0)
+            return True
+        return super().eventFilter(obj, event)
 
     def _edit_row(self, row, _col):
         self._row = row

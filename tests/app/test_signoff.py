@@ -157,6 +157,9 @@ def test_send_back_pins_notes_to_keypoints_and_the_label_page_shows_them(qtbot, 
     w.go(fids[2])
     assert wrist_note in w.canvas.note_of(LEFT_WRIST)
     assert w.canvas.note_of(LEFT_WRIST + 1) == ""
+    # the noted handle is drawn above the others, so a neighbour cannot hide its badge
+    zs = [h.zValue() for h in w.canvas._handles]
+    assert zs[LEFT_WRIST] > max(z for i, z in enumerate(zs) if i != LEFT_WRIST)
     text = w.points.notes_text()
     assert "left wrist" in text and wrist_note in text and "whole pose" in text
     assert wrist_note in w.points.table.item(LEFT_WRIST, 0).toolTip()

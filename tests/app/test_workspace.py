@@ -54,6 +54,7 @@ def test_drag_a_handle_then_undo_and_redo_in_the_store(window, qtbot):
     _key(window, Qt.Key_Z, Qt.ControlModifier)
     assert _stored(window, fid, 5) == [100.25, 80.5, 2.0]
     assert window.canvas.handle_pos(5) == QPointF(100.25, 80.5)
+    assert window.statusBar().currentMessage() == "undone: Move left shoulder"    # says what was undone
     _key(window, Qt.Key_Z, Qt.ControlModifier | Qt.ShiftModifier)
     assert _stored(window, fid, 5)[:2] == pytest.approx([want.x(), want.y()])
 
@@ -396,6 +397,21 @@ def test_keys_are_configurable_and_kept(window, settings):
     _key(window, Qt.Key_J)
     assert window.frame_id == window.order[1]
     assert Keys(settings).keys("frame.next") == ["J"]         # saved with QSettings
+    sheet.close()
+
+
+def test_key_sheet_rows_are_changed_from_the_keyboard(window, qtbot):
+    from kinemark.app.shortcuts import COMMANDS, KeySheet
+    sheet = KeySheet(window.keys, window)
+    qtbot.addWidget(sheet)
+    sheet.show()
+    qtbot.waitExposed(sheet)
+    row = [c.id for c in COMMANDS].index("queue.next")
+    sheet.table.setCurrentCell(row, 0)
+    QTest.keyClick(sheet.table, Qt.Key_Return)
+    assert sheet.editor.isEnabled() and "Next in line" in sheet.note.text()
+    # the long help line is not cut to one 26-pixel row
+    assert sheet.table.rowHeight(row) > 26
     sheet.close()
 
 
