@@ -242,7 +242,11 @@ def test_the_coco_fuzzer_counts_crashes_and_partial_writes(monkeypatch):
         return plan
     monkeypatch.setattr(coco, "plan_import", blind)
     rep = R.fuzz_coco(60, seed=2)
-    assert any("refuse wrote from a defective file" in m for m, _ in rep.partial)
+    # the blind importer is caught either writing from a defective file, or accepting one and
+    # writing nothing (which of the two depends on the cases drawn, that is on the version of
+    # the property-testing library; an import now leaves out keypoints already on a frame)
+    assert any("refuse wrote from a defective file" in m for m, _ in rep.partial) or \
+        any("refuse accepted a defective file" in m for m, _ in rep.disagreements)
 
     def broken(data, skeleton, root, **k):
         if isinstance(data, dict) and len(data.get("images") or []) >= 2:
