@@ -42,6 +42,14 @@ def _default_user_name() -> str:
         return "owner"
 
 
+def _make_folder(root: Path):
+    """The project folder and any missing parents, or a one-line reason why not."""
+    try:
+        root.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise KinemarkError(f"cannot create the project folder {root}: {e.strerror}") from None
+
+
 class Project:
     def __init__(self, root: Path, store: Store):
         self.root = Path(root).resolve()
@@ -69,11 +77,14 @@ class Project:
             check_dsn_has_no_password(db)
             schema = schema or _schema_from_folder(root)
             store = Store.postgres(db, schema, create=True)
-            root.mkdir(parents=True, exist_ok=True)
+            _make_folder(root)
             _write_private(root / TEAM_FILE, json.dumps({"dsn": db, "schema": schema}, indent=2))
         else:
-            root.mkdir(parents=True, exist_ok=True)
-            store = Store(root / DB_NAME, create=True)
+            _make_folder(root)
+            try:
+                store = Store(root / DB_NAME, create=True)
+            except OSError as e:
+                raise KinemarkError(f"cannot create the project database in {root}: {e.strerror}") from None
         try:
             owner_user = store.add_user(owner or _default_user_name(), "admin")
             store.add_skeleton(skeleton, user_id=owner_user.id)

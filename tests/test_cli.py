@@ -33,12 +33,14 @@ def test_new_add_info_export(tmp_path, capsys):
     (["add", "{tmp}/p0", "{tmp}/x.mp4"], "not a Kinemark project"),
     (["export", "{tmp}/p0", "{tmp}/o.json", "--format", "xml"], "invalid choice"),
     (["frobnicate"], "invalid choice"),
+    (["new", "{tmp}/afile/sub"], "cannot create the project folder"),
     (["bench", "fuzz", "--cases", "-3"], "--cases must be above 0"),
     (["bench", "export", "--frames", "-5"], "--frames must be above 0"),
     (["bench", "team", "--seconds", "nan"], "--seconds must be above 0"),
 ])
 def test_user_errors_exit_2_with_one_line(tmp_path, capsys, args, match):
     (tmp_path / "p0").mkdir()
+    (tmp_path / "afile").write_text("not a folder")
     rc = run(*[a.format(tmp=tmp_path) for a in args])
     err = capsys.readouterr().err
     assert rc == 2
