@@ -151,15 +151,11 @@ class SignoffPanel(QWidget):
         lay = QVBoxLayout(inner)
         lay.setContentsMargins(0, 0, 4, 0)
         lay.setSpacing(4)
-        lay.addWidget(_section("Why it is listed"))
-        self.reasons = _body()
-        lay.addWidget(self.reasons)
-        lay.addWidget(_section("QA flags"))
-        self.flags = _body()
-        lay.addWidget(self.flags)
-        lay.addWidget(_section("Earlier notes"))
-        self.notes = _body()
-        lay.addWidget(self.notes)
+        self.sections = [_section("Why it is listed"), _section("QA flags"), _section("Earlier notes")]
+        self.reasons, self.flags, self.notes = _body(), _body(), _body()
+        for head, body in zip(self.sections, (self.reasons, self.flags, self.notes)):
+            lay.addWidget(head)
+            lay.addWidget(body)
         lay.addStretch(1)
         scroll.setWidget(inner)
         outer.addWidget(scroll, 1)
@@ -190,6 +186,8 @@ class SignoffPanel(QWidget):
         on = item is not None
         self.accept_button.setEnabled(on and can_decide)
         self.back_button.setEnabled(on and can_decide)
+        for head in self.sections:          # no empty headings when no frame is chosen
+            head.setVisible(on)
         if not on:
             self.who.setText("Choose a frame on the left." if state is None else
                              f"This frame is {theme.STATE_WORDS.get(state, state)}, not waiting for sign-off.")

@@ -270,6 +270,17 @@ def test_accept_all_without_qa_flags_leaves_the_flagged_ones(qtbot, team, settin
     w.close()
 
 
+def test_signoff_panel_shows_no_empty_headings_without_a_frame(qtbot, team, settings):
+    fids = _frames(team)
+    _label(team, fids[0])
+    w = open_window(qtbot, team.root, settings, user="rev")
+    w.signoff.show_item(None)
+    assert all(h.isHidden() for h in w.signoff.sections)
+    _signoff(qtbot, w)                                   # the handed-in frame is shown
+    assert w._signoff_item() is not None and not any(h.isHidden() for h in w.signoff.sections)
+    w.close()
+
+
 def test_accept_all_key_works_only_on_the_signoff_page(qtbot, team, settings):
     """Shift+A on the Label page must not accept frames nobody has looked at."""
     fids = _frames(team)
