@@ -820,9 +820,12 @@ class MainWindow(QMainWindow):
                                   f"current keypoint: {name} · zoom {zoom}")
         self.points.summary.setText(f"{int((w.keypoints[:, 2] > 0).sum())} of {len(w.sources)} placed"
                                     + (f" · version {w.version}" if w.version else ""))
-        self.points.hint.setText(" · ".join(f"{self.keys.text(c)} {name_}" for c, name_ in (
-            ("point.put", "put here"), ("point.nudge_left", "nudge"), ("point.visibility", "visibility"),
-            ("point.confirm", "confirm"), ("queue.next", "next in line"), ("help.keys", "all keys"))))
+        nudge = self.keys.text("point.nudge_left")
+        nudge = nudge[:-len("Left")] + "arrows" if nudge.endswith("+Left") else nudge
+        self.points.hint.setText(" · ".join(f"{k} {name_}" for k, name_ in (
+            (self.keys.text("point.put"), "put here"), (nudge, "nudge"),
+            (self.keys.text("point.visibility"), "visibility"), (self.keys.text("point.confirm"), "confirm"),
+            (self.keys.text("queue.next"), "next in line"), (self.keys.text("help.keys"), "all keys"))))
 
     def _update_progress(self):
         if self.project is None:
@@ -1283,7 +1286,7 @@ class MainWindow(QMainWindow):
                 live = None
             self._live = live
             self._show_queue(entries, note)
-            self._start_at_queue_top(entries)
+            self._start_at_queue_top(self.queue.entries)    # as shown: sent-back frames first
 
         def bad(exc):
             self.queue.button.setEnabled(True)

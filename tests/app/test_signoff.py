@@ -323,6 +323,7 @@ def test_a_frame_sent_back_heads_its_annotators_up_next(qtbot, team, settings):
     qtbot.waitUntil(lambda: w.queue.list.count() > 0, timeout=10000)
     top = w.queue.entries[0]
     assert top.frame_id == fids[2] and top.reasons[0].startswith("sent back with 1 open note")
+    assert w.frame_id == fids[2]                         # a first visit starts on it
     assert [e.frame_id for e in w.queue.entries].count(fids[2]) == 1
     # for another annotator it is not theirs to fix
     team.store.add_user("ra2", "annotator", by=team.user("lead").id)
