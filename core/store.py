@@ -296,6 +296,17 @@ def _sqlite_trouble(e: Exception, path) -> KinemarkError | None:
     return None
 
 
+def _folder_writable(folder: Path) -> bool:
+    """Whether files can be made in ``folder`` (SQLite's journal lives beside the database).
+    A read-only mount says so even to root, for whom permission bits say nothing."""
+    if not os.access(folder, os.W_OK):
+        return False
+    try:
+        return not bool(os.statvfs(folder).f_flag & os.ST_RDONLY)
+    except (OSError, AttributeError):
+        return True
+
+
 class _SqliteConnection:
     dialect = "sqlite"
 
@@ -375,6 +386,7 @@ class Store:
         self._lock = threading.RLock()
         self._depth = 0
         self._skeleton_cache = None
+        self.read_only = False          # True: opened from a read-only folder, to look at only
         if _pg is not None:
             self.path = Path(f"postgresql:{_pg[1]}")
             self._db = _PgConnection(_pg[0])
@@ -388,6 +400,9 @@ class Store:
         if create and not self.path.exists():
             # made private before SQLite writes a byte (and its -wal/-shm files take this mode)
             os.close(os.open(str(self.path), os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
+        if not create and not _folder_writable(self.path.parent):
+            self._open_read_only()
+            return
         try:
             raw = sqlite3.connect(str(self.path), isolation_level=None, check_same_thread=False,
                                   timeout=30.0)
@@ -407,10 +422,6 @@ class Store:
             # append-only trigger (SQLite fires delete triggers on REPLACE only recursively)
             self._db.execute("PRAGMA recursive_triggers=ON")
         except sqlite3.DatabaseError as e:
-            if "unable to open database file" in str(e) and not os.access(self.path.parent, os.W_OK):
-                raise KinemarkError(f"the project folder {self.path.parent} is read-only: Kinemark keeps a "
-                                    "journal beside its database and cannot open it there. Copy the project "
-                                    "to a folder you may write to") from None
             raise KinemarkError(f"cannot open project database {self.path}: {e}") from None
         if create:
             try:
@@ -418,6 +429,34 @@ class Store:
             except OSError:
                 pass
         self.migrate()
+
+    def _open_read_only(self):
+        """A project on a folder nobody may write to (an archive, read-only media): opened to
+        look at, never to change. SQLite cannot keep its journal there, so the file is read
+        as it is (immutable); a change is refused with a one-line error (_SQLITE_TROUBLE)."""
+        wal = Path(str(self.path) + "-wal")
+        if wal.exists() and wal.stat().st_size > 0:
+            raise KinemarkError(f"the project in the read-only folder {self.path.parent} was not closed "
+                                "cleanly (its journal still holds changes), so it cannot be read there as it "
+                                "is: copy the project to a folder you may write to and open it there")
+        try:
+            raw = sqlite3.connect(f"{self.path.resolve().as_uri()}?mode=ro&immutable=1", uri=True,
+                                  isolation_level=None, check_same_thread=False)
+        except sqlite3.DatabaseError as e:
+            raise KinemarkError(f"cannot open project database {self.path}: {e}") from None
+        self._db = _SqliteConnection(raw, self.path)
+        self.read_only = True
+        v = self.version()
+        if v == 0:
+            raw.close()
+            raise KinemarkError(f"{self.path} is not a Kinemark project database (it is empty or belongs to "
+                                "another program)")
+        if v != len(MIGRATIONS):
+            raw.close()
+            raise KinemarkError(f"the project in the read-only folder {self.path.parent} needs its database "
+                                f"brought up to date (schema {v}, this Kinemark writes {len(MIGRATIONS)}): copy "
+                                "it to a folder you may write to and open it there")
+        self._db.execute("PRAGMA foreign_keys=ON")
 
     @classmethod
     def postgres(cls, dsn: str, schema: str, *, create: bool = False) -> "Store":
@@ -488,7 +527,9 @@ class Store:
                 return 0
         try:
             row = self._db.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
-        except sqlite3.OperationalError:
+        except sqlite3.OperationalError as e:
+            if "no such table" not in str(e):      # e.g. the file cannot be read: not "version 0"
+                raise KinemarkError(f"cannot read the project database {self.path}: {e}") from None
             return 0
         except _DBERROR as e:
             raise KinemarkError(f"{self.path} is not a Kinemark project database ({e})") from None

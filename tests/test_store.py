@@ -204,3 +204,28 @@ def test_writing_to_a_read_only_database_is_said_plainly(tmp_path):
     with pytest.raises(sqlite3.OperationalError):           # Kinemark's own mistakes stay loud
         ro.execute("SELECT no_such_column FROM meta")
     ro.close()
+
+
+def test_a_project_on_a_read_only_folder_opens_to_look_at(tmp_path, monkeypatch):
+    """An archived project on read-only media: read as it is (SQLite's immutable mode), and
+    any change refused with a one-line error. The folder's read-only state is simulated here
+    (mounting one needs privileges a test machine may not have); the SQLite side is real."""
+    p = Project.create(tmp_path / "p", COCO17, owner="ra1")
+    p.store.set_meta("target_frames", "250")
+    p.close()
+    monkeypatch.setattr(store_mod, "_folder_writable", lambda folder: False)
+    with Project.open(tmp_path / "p") as q:
+        assert q.store.read_only and q.store.get_meta("target_frames") == "250"
+        with pytest.raises(KinemarkError, match="read-only"):
+            q.store.set_meta("target_frames", "300")
+
+
+def test_a_read_only_project_left_open_is_refused_not_read_stale(tmp_path, monkeypatch):
+    p = Project.create(tmp_path / "p", COCO17, owner="ra1")
+    p.store.set_meta("target_frames", "250")           # still in the journal: p is not closed
+    wal = tmp_path / "p" / (DB_NAME + "-wal")
+    assert wal.exists() and wal.stat().st_size > 0
+    monkeypatch.setattr(store_mod, "_folder_writable", lambda folder: False)
+    with pytest.raises(KinemarkError, match="not closed cleanly"):
+        Store(tmp_path / "p" / DB_NAME)
+    p.close()
