@@ -314,23 +314,20 @@ class _SqliteConnection:
         self.raw = conn
         self.path = path
 
-    def execute(self, sql, args=()):
+    def _run(self, method, sql, args):
         try:
-            return self.raw.execute(sql, args)
+            return method(sql, args)
         except sqlite3.DatabaseError as e:
             said = _sqlite_trouble(e, self.path)
             if said is None:
                 raise
             raise said from None
 
+    def execute(self, sql, args=()):
+        return self._run(self.raw.execute, sql, args)
+
     def executemany(self, sql, rows):
-        try:
-            return self.raw.executemany(sql, rows)
-        except sqlite3.DatabaseError as e:
-            said = _sqlite_trouble(e, self.path)
-            if said is None:
-                raise
-            raise said from None
+        return self._run(self.raw.executemany, sql, rows)
 
     def close(self):
         self.raw.close()
