@@ -473,6 +473,11 @@ class FrameCanvas(QGraphicsView):
             self.zoom(1.25 ** steps, e.position())
         e.accept()
 
+    @property
+    def dragging(self) -> bool:
+        """A handle is being dragged right now."""
+        return self._drag is not None
+
     def cancel_drag(self):
         """Put a handle that is being dragged back (e.g. the frame changed under it)."""
         self._drag = None

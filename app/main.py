@@ -1298,8 +1298,8 @@ class MainWindow(QMainWindow):
     def _start_at_queue_top(self, entries):
         """On a first visit, go to the top of Up next, if the person is still where the window
         opened: not moved, nothing edited, no point being dragged."""
-        mark, self._to_queue_top = getattr(self, "_to_queue_top", None), None
-        if (mark is None or mark != self._goes or self.undo.count() or self.canvas._drag is not None
+        mark, self._to_queue_top = self._to_queue_top, None
+        if (mark is None or mark != self._goes or self.undo.count() or self.canvas.dragging
                 or not entries or entries[0].frame_id not in self.frame_by_id):
             return
         self.go(entries[0].frame_id)

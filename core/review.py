@@ -390,7 +390,7 @@ def sent_back_to(project, user=None) -> list[tuple[int, int]]:
     with its number of open notes: (frame id, open notes). A sent-back frame with no recorded
     author or submitter (say, imported) is everyone's to pick up."""
     who = _user(project, user)
-    anns = [a for a in project.store.annotations(states=[RETURNED])]
+    anns = project.store.annotations(states=[RETURNED])
     if not anns:
         return []
     auth = authorships(project, [a.id for a in anns])
