@@ -108,7 +108,8 @@ def run(what: str, args=None):
         bench_propose(n or 60)
     if what in ("queue", "all"):
         from .bench_queue import run as run_queue
-        run_queue(project_dir=getattr(args, "project", None) or "sample_project")
+        run_queue(project_dir=getattr(args, "project", None) or "sample_project",
+                  scenario_seed=getattr(args, "scenario_seed", None))
     if what in ("team", "all"):
         from .bench_team import run as run_team
         run_team(getattr(args, "db", None), seconds=getattr(args, "seconds", None) or 60.0)

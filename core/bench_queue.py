@@ -133,15 +133,49 @@ def _subset(pool: Pool, pos, residual) -> Samples:
     return Samples(pool.X[pos], residual[pos], pool.group[pos], pool.area[pos], pool.vis[pos])
 
 
-def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_project", clips_dir=None,
-        say=print):
+def scenario_seed_of(clips) -> int | None:
+    """The seed the scenario in ``clips`` was drawn with (its ``scenario.json``), or None."""
+    import json
     from pathlib import Path
+    try:
+        return int(json.loads((Path(clips) / "scenario.json").read_text())["seed"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+
+
+def versions() -> str:
+    """The versions of the libraries the figures depend on (the dependencies are not pinned)."""
+    import onnxruntime
+    return f"numpy {np.__version__}, onnxruntime {onnxruntime.__version__}, opencv {cv2.__version__}"
+
+
+def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_project", clips_dir=None,
+        say=print, scenario_seed: int | None = None):
+    """``scenario_seed``: draw the invented scenario with this seed (other participants, same
+    kinds of clips) into ``project_dir/clips`` when that folder has none, so the figures can be
+    checked on a second draw; a folder already holding another draw is refused."""
+    from pathlib import Path
+    from .errors import KinemarkError
     from .project import Project
     from .store import DB_NAME
     root = Path(project_dir)
     clips = Path(clips_dir) if clips_dir else root / "clips"
+    if scenario_seed is not None:
+        if isinstance(scenario_seed, bool) or not isinstance(scenario_seed, int) or scenario_seed < 0:
+            raise KinemarkError(f"the scenario seed must be a non-negative integer, not {scenario_seed!r}")
+        if (clips / "scenario.json").exists():
+            have = scenario_seed_of(clips)
+            if have != scenario_seed:
+                raise KinemarkError(f"{clips} holds the scenario drawn with seed {have}, not {scenario_seed}: "
+                                    f"pass --project with a new folder for another draw")
+        elif root.exists() and any(root.iterdir()):
+            raise KinemarkError(f"{root} is not empty and holds no scenario: pass --project with a new "
+                                f"folder for another draw")
+        else:
+            from .demo import ensure_clips
+            say(f"bench queue: drawing the invented scenario with seed {scenario_seed} into {clips}")
+            ensure_clips(clips, size="demo", seed=scenario_seed)
     if not (clips / "scenario.json").exists():
-        from .errors import KinemarkError
         raise KinemarkError(f"no scenario clips in {clips}: run this from the repository root, or pass "
                             f"--project with the sample project's folder")
     if not (root / DB_NAME).exists():
@@ -156,6 +190,7 @@ def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_p
     with Project.open(root) as p:
         pool = load_pool(p, clips)
         sig = p.skeleton.sigma_array
+    say(f"bench queue: scenario seed {scenario_seed_of(clips)}; {versions()}")
     say(f"bench queue: {len(pool.frame_ids)} frames with proposals and exact truth, "
         f"{len(set(pool.group))} participants; raw-model failures (OKS < 0.5): "
         f"{int((pool.raw_oks < 0.5).sum())} ({np.mean(pool.raw_oks < 0.5):.0%}); loaded in "

@@ -402,6 +402,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seconds", type=float, default=None, help="team: how long the load runs (default 60)")
     s.add_argument("--db", help="team: PostgreSQL connection string (default $KINEMARK_TEST_PG)")
     s.add_argument("--project", help="queue: the sample project's folder (default sample_project)")
+    s.add_argument("--scenario-seed", type=int, default=None,
+                   help="queue: draw the invented scenario with this seed into --project (a new folder) "
+                        "and measure on it; the sample project is seed 7")
     s.add_argument("--cases", type=int, default=None, help="crash: kills (default 50); fuzz: COCO files (10000)")
     s.set_defaults(fn=cmd_bench)
     return ap

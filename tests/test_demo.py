@@ -84,6 +84,7 @@ def test_bench_queue_runs_on_the_tiny_scenario(demo):
     table = run(budgets=(4, 8), seeds=(0,), project_dir=str(demo.project), say=lines.append)
     text = "\n".join(lines)
     assert "ceiling of the correction itself" in text and "at N=8" in text
+    assert "scenario seed 7;" in text and "onnxruntime " in text      # which draw, which libraries
     for strat in STRATEGIES:
         recall, oks_adapted, moves_adapted, moves_raw = table[(strat, 8)]
         assert 0.0 <= recall <= 1.0 and 0.0 <= oks_adapted <= 1.0
@@ -92,3 +93,17 @@ def test_bench_queue_runs_on_the_tiny_scenario(demo):
     # so recall cannot shrink with N (the combined queue draws its seed per budget)
     for strat in ("uncertainty", "novelty"):
         assert table[(strat, 8)][0] >= table[(strat, 4)][0]
+
+
+def test_bench_queue_draws_another_scenario_only_into_a_new_folder(demo, tmp_path):
+    """--scenario-seed never mixes two draws in one folder, nor renders into someone's files."""
+    from kinemark.core.bench_queue import run
+    from kinemark.core.errors import KinemarkError
+    with pytest.raises(KinemarkError, match="drawn with seed 7, not 23"):
+        run(budgets=(4,), seeds=(0,), project_dir=str(demo.project), scenario_seed=23, say=lambda *a: None)
+    (tmp_path / "notes.txt").write_text("someone's notes")
+    with pytest.raises(KinemarkError, match="not empty and holds no scenario"):
+        run(budgets=(4,), seeds=(0,), project_dir=str(tmp_path), scenario_seed=23, say=lambda *a: None)
+    assert sorted(x.name for x in tmp_path.iterdir()) == ["notes.txt"]
+    with pytest.raises(KinemarkError, match="non-negative integer"):
+        run(budgets=(4,), seeds=(0,), project_dir=str(tmp_path / "new"), scenario_seed=-1, say=lambda *a: None)
