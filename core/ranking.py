@@ -275,10 +275,16 @@ class RankingQueue:
         if labelled_feats is not None and len(labelled_feats):
             self.add_labelled_features(labelled_feats)
 
-    def add_labelled_features(self, lf: np.ndarray):
-        """Fold new labelled poses into the nearest-labelled distances: O(N x new)."""
-        for x in np.atleast_2d(np.asarray(lf, float)):
-            np.minimum(self.min_d, _sq_dists(self.feats, x, self.sq), out=self.min_d)
+    def add_labelled_features(self, lf: np.ndarray, chunk: int = 8192):
+        """Fold new labelled poses into the nearest-labelled distances: O(N x new), as one
+        matrix product per block of candidates rather than one pass over the pool per pose."""
+        lf = np.atleast_2d(np.asarray(lf, float))
+        if not lf.size:
+            return
+        lsq = np.einsum("ij,ij->i", lf, lf)
+        for s in range(0, len(self.feats), chunk):
+            d = self.sq[s:s + chunk, None] - 2.0 * (self.feats[s:s + chunk] @ lf.T) + lsq[None, :]
+            np.minimum(self.min_d[s:s + chunk], np.maximum(d, 0.0).min(axis=1), out=self.min_d[s:s + chunk])
 
     def mark_labelled(self, positions):
         """Pool members that just got labels: remove them and fold their poses in."""

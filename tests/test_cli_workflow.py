@@ -109,3 +109,7 @@ def test_benchmarks_run_at_a_reduced_size(capsys):
     assert run("bench", "open", "--frames", "2000") == 0
     out = capsys.readouterr().out
     assert "export" in out and "open" in out
+    from kinemark.core.bench import bench_rank
+    bench_rank(sizes=(500, 1500), batch=20, repeats=2)
+    out = capsys.readouterr().out
+    assert "median" in out and "1500/500" in out and "of 2 (range" in out

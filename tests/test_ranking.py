@@ -44,6 +44,16 @@ def test_k_center_greedy_matches_bruteforce():
         assert picks == _kcenter_bruteforce(X, 6, lab), trial
 
 
+def test_nearest_labelled_distances_match_the_definition_in_every_block():
+    rng = np.random.default_rng(4)
+    X, L = rng.normal(size=(300, 34)), rng.normal(size=(23, 34))
+    q = RankingQueue(X, np.zeros(300), np.zeros(300, int), np.arange(300), NOVELTY_ONLY)
+    q.add_labelled_features(L[:20], chunk=64)       # blocks of 64 candidates, the last one short
+    q.add_labelled_features(L[20:], chunk=7)        # folded in later, as labels arrive
+    want = ((X[:, None, :] - L[None, :, :]) ** 2).sum(-1).min(axis=1)
+    np.testing.assert_allclose(q.min_d, want, rtol=1e-9, atol=1e-9)
+
+
 def test_k_center_greedy_is_within_twice_the_optimal_radius():
     """Gonzalez (1985): greedy farthest-point k-center is a 2-approximation. Optimum by brute force."""
     rng = np.random.default_rng(5)
