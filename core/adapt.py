@@ -714,8 +714,9 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
                f"({corr.summary['participants']} participants); mean keypoint similarity on held-out "
                f"participants {corr.summary['heldout_similarity_raw']:.3f} raw -> "
                f"{corr.summary['heldout_similarity_adapted']:.3f} adapted, joints needing a move per frame "
-               f"about {corr.summary['heldout_moves_raw']:.2f} -> {corr.summary['heldout_moves_adapted']:.2f}; "
-               f"re-proposed {len(changed)} "
+               f"about {corr.summary['heldout_moves_raw']:.2f} -> {corr.summary['heldout_moves_adapted']:.2f} "
+               f"(each labelled participant scored by a fit on the others, so it holds for frames like the "
+               f"labelled ones); re-proposed {len(changed)} "
                f"untouched frame(s)")
         if outside:
             msg += (f"; {outside} frame(s) unlike every labelled one keep the raw proposal "

@@ -205,6 +205,8 @@ def cmd_rank(a):
             w = RankWeights.parse_user(a.set_weights, base)
             p.store.set_meta("ranking_weights", w.to_json(), user_id=p.user(a.user).id)
             print(f"ranking weights for this project: {w.to_json()}")
+            for note in w.caveats():
+                print(f"note: {note}")
         entries = ops.rank(p, a.batch)
         names = {m.id: m.display_name for m in p.store.all_media()}
     if not entries:

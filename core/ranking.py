@@ -63,6 +63,17 @@ class RankWeights:
     novelty_cap: float = 4.0          # novelty saturates at this many typical pool distances
     seed: int = 0                     # seeds the sample that sets the novelty scale
 
+    def caveats(self) -> list[str]:
+        """Plain-words warnings about weights that are valid but known to work against the job."""
+        out = []
+        if self.novelty == 0 and self.uncertainty > 0:
+            # measured in session 6 (DEVELOPERS.md): seed 7 at 50 and 100 frames, not seed 23
+            out.append("with novelty 0 the queue picks only frames the model is unsure of; on the sample "
+                       "project's invented data ('kinemark bench queue'), a correction ('adapt') fitted on "
+                       "50-100 such frames made other participants' proposals worse than the raw model's, "
+                       "while its own cross-validated figures said better")
+        return out
+
     @classmethod
     def from_json(cls, text: str | None) -> "RankWeights":
         if not text:

@@ -44,7 +44,10 @@ def test_propose_rank_and_weights(proj, capsys):
     assert len(lines) == 4 and all("score" in ln for ln in lines)
     assert run("rank", proj, "--batch", "2", "--set-weights", '{"uncertainty": 2}') == 0
     out = capsys.readouterr().out
-    assert '"uncertainty": 2.0' in out
+    assert '"uncertainty": 2.0' in out and "note:" not in out
+    assert run("rank", proj, "--batch", "2", "--set-weights", '{"novelty": 0}') == 0
+    assert "note: with novelty 0 the queue picks only frames the model is unsure of" in capsys.readouterr().out
+    assert run("rank", proj, "--batch", "2", "--set-weights", '{"novelty": 1}') == 0
     assert run("rank", proj, "--set-weights", '{"speed": 1}') == 2
     assert "unknown ranking weight 'speed'" in capsys.readouterr().err
 
