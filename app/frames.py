@@ -158,11 +158,16 @@ class FrameWorker(QObject):
         with self._cv:
             return not (self._busy or self._ahead or self._thumbs)
 
-    def close(self):
+    def close(self, timeout: float = 5.0):
+        """Stop the worker. Its decoders are its own: it closes them as it stops. If it is
+        still inside a read after ``timeout`` seconds, it closes them when that read ends;
+        they are never closed from here under a read in progress."""
         with self._cv:
             self._stop = True
             self._cv.notify()
-        self._thread.join(timeout=5)
+        self._thread.join(timeout=timeout)
+
+    def _close_sources(self):
         for s in self._open.values():
             s.close()
         self._open.clear()
@@ -191,12 +196,11 @@ class FrameWorker(QObject):
                     self._busy = False
                     self._cv.wait()
                 if self._stop:
+                    self._close_sources()
                     return
                 self._busy = True
                 if self._reset_sources:           # only this thread touches its decoders
-                    for old in self._open.values():
-                        old.close()
-                    self._open.clear()
+                    self._close_sources()
                     self._reset_sources = False
                 gen = self.generation
                 if self._ahead:

@@ -289,9 +289,12 @@ class FrameSource:
         self._lock = threading.Lock()
 
     def close(self):
-        if self._cap is not None:
-            self._cap.release()
-            self._cap = None
+        # under the read lock: releasing a capture that another thread is decoding from
+        # crashes inside FFmpeg
+        with self._lock:
+            if self._cap is not None:
+                self._cap.release()
+                self._cap = None
 
     def _verify(self, index: int, frame: np.ndarray) -> bool:
         want = self.checksums.get(index)

@@ -1,5 +1,6 @@
 import os
 import shutil
+import time
 
 import cv2
 import numpy as np
@@ -84,6 +85,31 @@ def test_inexact_seek_falls_back_to_sequential_decode(tmp_path, video, monkeypat
         np.testing.assert_array_equal(src.read(i), ref[i])
     assert src.seek_misses >= 1
     src.close()
+
+
+def test_closing_a_source_waits_for_a_read_in_progress(video):
+    """Releasing an OpenCV capture that another thread is decoding from crashes in FFmpeg
+    (a segfault seen once in CI): close() must wait for the read to end."""
+    import threading
+    src = FrameSource(video, "video", {})
+    src.read(0)
+    started, order = threading.Event(), []
+    real = src._read
+
+    def slow_read(index):
+        started.set()
+        time.sleep(0.3)                     # long enough for close() to be called meanwhile
+        out = real(index)
+        order.append("read ended")
+        return out
+    src._read = slow_read
+    t = threading.Thread(target=src.read, args=(1,))
+    t.start()
+    assert started.wait(5)
+    src.close()
+    order.append("closed")
+    t.join(5)
+    assert order == ["read ended", "closed"] and src._cap is None
 
 
 def test_changed_video_is_refused_until_relinked(project, tmp_path):
