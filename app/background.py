@@ -126,7 +126,10 @@ class Background(QObject):
             dialog.setAutoReset(False)
             if not cancellable:
                 dialog.setCancelButton(None)
-            dialog.canceled.connect(cancel.set)
+            else:
+                # closing the dialog also emits canceled: work that cannot stop part-way (and
+                # stores its result at the end) must not be reported as cancelled once it ran
+                dialog.canceled.connect(cancel.set)
             dialog.setValue(0)
 
         def on_progress_(done, total, message):

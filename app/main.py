@@ -493,7 +493,8 @@ class MainWindow(QMainWindow):
         self.close_project()
         self.project = project
         self.undo.clear()
-        self.setWindowTitle(f"Kinemark — {project.root.name}")
+        self.setWindowTitle(f"Kinemark — {project.root.name}"
+                            + (" (read-only)" if getattr(project.store, "read_only", False) else ""))
         self._set_user(who)
         skel = project.skeleton
         self.canvas.set_skeleton(skel.keypoints, skel.edges)
@@ -1080,6 +1081,8 @@ class MainWindow(QMainWindow):
             why = self.model_problem or "this build has no model pre-fill"
             self.statusBar().showMessage(f"The pose model is not available ({why}); label by hand.", 8000)
             return
+        if self._read_only("Ask the model"):
+            return
         fid, adapter = self.frame_id, self._adapter
 
         def work(project, progress, cancel):
@@ -1090,17 +1093,43 @@ class MainWindow(QMainWindow):
             ch, rep = result if isinstance(result, tuple) else (result, None)
             self.after_change(ch)
             if rep is not None and hasattr(rep, "summary"):
-                self.statusBar().showMessage(rep.summary(), 8000)
+                self.statusBar().showMessage(self._one_frame_words(rep), 10000)
+                if rep.failed:      # the person asked for points and got none: say why, in full
+                    self.background.show_error(KinemarkError(
+                        f"the model could not propose this frame: {rep.failed[0][1]}"))
 
         self.background.run("Asking the model", work, root=self.project.root, on_done=done)
+
+    @staticmethod
+    def _one_frame_words(rep) -> str:
+        """What Ask the model did on one frame, the outcome first (the status bar shows only the
+        start of a long line); the run's figures follow."""
+        if rep.failed:
+            head = f"no proposal, the model failed: {rep.failed[0][1]}"
+        elif rep.already_done and not rep.proposed:
+            head = "already has this model's proposal; nothing new to ask"
+        elif rep.human_kept:
+            head = "proposal stored; the points a person placed here were kept"
+        else:
+            head = "pre-filled by the model"
+        return f"{head} ({rep.summary()})"
+
+    def _read_only(self, what: str) -> bool:
+        """True (and said in the status bar) when the open project cannot store anything."""
+        if self.project is None or not getattr(self.project.store, "read_only", False):
+            return False
+        self.statusBar().showMessage(
+            f"{what}: this project is open read-only (its folder cannot be written to), so nothing it "
+            "makes could be stored; copy the project to a folder you may write to", 10000)
+        return True
 
     # ---- batch actions -------------------------------------------------------------------------
 
     def _prefill_if_never_proposed(self):
         """A project with frames but no model proposal at all (a new one, or the sample on first
         open) is pre-filled in the background; the person can label meanwhile, or cancel."""
-        if not self.order:
-            return
+        if not self.order or getattr(self.project.store, "read_only", False):
+            return          # nothing to pre-fill, or nowhere to store it (said by the title)
 
         def work(project, progress, cancel):
             # any proposal at all? (stops at the first frame that has one; the store has no count)
@@ -1126,6 +1155,8 @@ class MainWindow(QMainWindow):
             self.statusBar().showMessage(f"The pose model is not available ({self.model_problem}); "
                                          "nothing to pre-fill with.", 8000)
             return
+        if self._read_only("Pre-fill unlabelled frames"):
+            return
         adapter = self._adapter          # None while it is still loading: the job loads its own
         title = "Pre-filling unlabelled frames"
 
@@ -1146,9 +1177,16 @@ class MainWindow(QMainWindow):
             finished()
             self.after_change(ch)
             self.statusBar().showMessage(rep.summary(), 10000)
+            if rep.failed and not auto:
+                # the status bar shows only the start of the summary, where failures come last
+                n = len(rep.failed)
+                rest = f"; the other {rep.proposed} were" if rep.proposed else ""
+                self.background.show_error(KinemarkError(
+                    f"{n} of {n + rep.proposed} frame(s) could not be proposed{rest}. First failure: "
+                    f"frame {rep.failed[0][0]}: {rep.failed[0][1]}\n\n{rep.summary()}"))
 
         def bad(exc):
-            self.task.finish()
+            finished()          # proposals stored before the failure stay: show them
             if not auto:
                 self.background.show_error(exc)
             else:
@@ -1183,7 +1221,8 @@ class MainWindow(QMainWindow):
         if self.project is None:
             return
         from ..core import ops
-
+        if self._read_only("Learn from accepted labels"):
+            return
         user = self.user_name
 
         def work(project, progress, cancel):
@@ -1196,7 +1235,11 @@ class MainWindow(QMainWindow):
             self.inform("Learn from accepted labels", ch.message)
             self.refresh_queue()
 
-        self.background.run("Learning from accepted labels", work, root=self.project.root, on_done=done)
+        # not cancellable: the fit stores the correction and re-proposes frames at its end, and
+        # cannot stop part-way; an error there may leave some frames re-proposed, so read them again
+        self.background.run("Learning from accepted labels", work, root=self.project.root, on_done=done,
+                            on_error=lambda exc: (self.reload_states(), self.refresh_queue()),
+                            cancellable=False)
 
     def ask_target(self):
         """Ask for the study's target number of accepted frames and store it (core.ops.set_target)."""
@@ -1339,7 +1382,9 @@ class MainWindow(QMainWindow):
         self.queue.button.setEnabled(True)
         self.queue.set_entries(entries, lambda e: self.describe_short(self.frame_by_id[e.frame_id])
                                if e.frame_id in self.frame_by_id else f"frame {e.frame_id}",
-                               note, self.states)
+                               note, self.states,
+                               **({} if self.order else {"empty": "No frames yet: add videos or images "
+                                                          "(Project ▸ Add videos or images…) or drop them here."}))
         self.queue.set_current(self.frame_id)
         self.frames.thumbnails([(e.frame_id, e.media_id, e.frame_index) for e in entries
                                 if e.media_id in self.media_by_id])

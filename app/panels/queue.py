@@ -98,7 +98,9 @@ class QueuePanel(QWidget):
         self.progress_text.setToolTip(f"the project's target is {target} accepted frames "
                                       "(project setting target_frames)")
 
-    def set_entries(self, entries, describe, note: str = "", states: dict | None = None):
+    def set_entries(self, entries, describe, note: str = "", states: dict | None = None,
+                    empty: str = "Nothing waiting: every frame is labelled."):
+        """``empty``: what an empty list means (the window knows whether the project has frames)."""
         old = [int(e.frame_id) for e in self.entries]
         if self._current in old:
             # where the current frame stood, for Next in line once a re-rank drops it
@@ -110,7 +112,7 @@ class QueuePanel(QWidget):
         self.note.setVisible(bool(note))
         self.mark(states or {})
         if not self.entries:
-            self.note.setText((note + "\n" if note else "") + "Nothing waiting: every frame is labelled.")
+            self.note.setText((note + "\n" if note else "") + empty)
             self.note.setVisible(True)
 
     def clear(self):
