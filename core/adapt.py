@@ -705,7 +705,9 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
     corr.with_regression = use_reg
     who = project.user(user)
     project.store.set_meta("adaptation", corr.to_json(), user_id=who.id)
-    changed, outside = reapply(project, corr, user_id=who.id) if corr.active else ((), 0)
+    # also when the raw model is kept: frames still pre-filled with an earlier correction's
+    # points go back to the raw proposal, as the new fit says they should
+    changed, outside = reapply(project, corr, user_id=who.id)
     names = [project.skeleton.keypoints[j] for j in np.flatnonzero(corr.use)]
     if corr.active:
         n_kernel = sum(corr.kind.get(int(j)) == "rbf" for j in np.flatnonzero(corr.use))
@@ -724,6 +726,9 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
     else:
         msg = ("kept the raw model: " + corr.summary.get("reason", "no joint's correction beat the raw model "
                                                          "on held-out participants"))
+        if changed:
+            msg += (f"; {len(changed)} untouched frame(s) pre-filled with the earlier correction went back "
+                    f"to the raw proposal")
     return Changes(annotations=tuple(changed), message=msg, details={"summary": corr.summary,
                                                                      "joints": names}), corr
 

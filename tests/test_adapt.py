@@ -332,3 +332,38 @@ def test_the_cross_validation_counts_keypoints_brought_within_the_move_threshold
     assert np.all(np.diff(_objective(np.linspace(0, 1, 101))) > 0)
     crossing, inside = f[1] - f[0], f[3] - f[2]
     assert crossing > 5 * inside > 0
+
+
+def test_a_refit_that_keeps_the_raw_model_takes_back_the_earlier_correction(project, video):
+    """Frames still holding an earlier correction's untouched points go back to the raw
+    proposal when a refit finds no correction worth keeping; frames a person touched do not."""
+    from kinemark.core import ops
+    from kinemark.core.adapt import fit_project
+    from kinemark.core.media import Sampling
+    from kinemark.core.model import ACCEPTED, PREFILLED
+    ops.add_media(project, [video], sampling=Sampling(every=10), participant="QB-01")
+    s = project.store
+    fids = [f.id for f in s.frames()][:4]
+    rng = np.random.default_rng(0)
+    region = {"cx": 80.0, "cy": 60.0, "w": 100.0, "h": 100.0, "angle": 0.0}
+    raw = {}
+    for fid in fids:
+        k = np.column_stack([rng.uniform(40, 120, 17), rng.uniform(20, 100, 17), np.full(17, 2.0)])
+        raw[fid] = k
+        s.save_proposal(fid, model_id="m", model_hash="a" * 64, keypoints=k, confidence=np.full(17, 0.9),
+                        signals={}, score=0.9, region=region)
+    labelled = raw[fids[0]].copy()
+    labelled[:, :2] += 1.0
+    s.save_annotation(fids[0], labelled, ["human"] * 17, state=ACCEPTED)
+    earlier = raw[fids[1]].copy()
+    earlier[9, :2] += 6.0                                  # an earlier correction moved the left wrist
+    s.save_annotation(fids[1], earlier, ["model"] * 9 + ["adapted"] + ["model"] * 7, state=PREFILLED)
+    touched = raw[fids[2]].copy()
+    touched[9, :2] += 6.0
+    s.save_annotation(fids[2], touched, ["model"] * 9 + ["human"] + ["model"] * 7, state=PREFILLED)
+    ch, corr = fit_project(project)
+    assert not corr.active and "went back to the raw proposal" in ch.message
+    back = s.annotation(fids[1])
+    np.testing.assert_allclose(back.keypoints, raw[fids[1]])
+    assert set(back.sources) == {"model"}
+    np.testing.assert_allclose(s.annotation(fids[2]).keypoints, touched)     # a person's point stays
