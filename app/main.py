@@ -494,7 +494,7 @@ class MainWindow(QMainWindow):
         self.project = project
         self.undo.clear()
         self.setWindowTitle(f"Kinemark — {project.root.name}"
-                            + (" (read-only)" if getattr(project.store, "read_only", False) else ""))
+                            + (" (read-only)" if project.store.read_only else ""))
         self._set_user(who)
         skel = project.skeleton
         self.canvas.set_skeleton(skel.keypoints, skel.edges)
@@ -1116,7 +1116,7 @@ class MainWindow(QMainWindow):
 
     def _read_only(self, what: str) -> bool:
         """True (and said in the status bar) when the open project cannot store anything."""
-        if self.project is None or not getattr(self.project.store, "read_only", False):
+        if self.project is None or not self.project.store.read_only:
             return False
         self.statusBar().showMessage(
             f"{what}: this project is open read-only (its folder cannot be written to), so nothing it "
@@ -1128,7 +1128,7 @@ class MainWindow(QMainWindow):
     def _prefill_if_never_proposed(self):
         """A project with frames but no model proposal at all (a new one, or the sample on first
         open) is pre-filled in the background; the person can label meanwhile, or cancel."""
-        if not self.order or getattr(self.project.store, "read_only", False):
+        if not self.order or self.project.store.read_only:
             return          # nothing to pre-fill, or nowhere to store it (said by the title)
 
         def work(project, progress, cancel):

@@ -161,8 +161,8 @@ def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_p
     root = Path(project_dir)
     clips = Path(clips_dir) if clips_dir else root / "clips"
     if scenario_seed is not None:
-        if isinstance(scenario_seed, bool) or not isinstance(scenario_seed, int) or scenario_seed < 0:
-            raise KinemarkError(f"the scenario seed must be a non-negative integer, not {scenario_seed!r}")
+        from .synth.scenario import check_seed
+        check_seed(scenario_seed)
         if (clips / "scenario.json").exists():
             have = scenario_seed_of(clips)
             if have != scenario_seed:

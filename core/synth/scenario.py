@@ -365,12 +365,17 @@ def _mask_box(mask: np.ndarray):
     return [float(x0), float(y0), float(x1 - x0 + 1), float(y1 - y0 + 1)], int(mask.sum())
 
 
+def check_seed(seed) -> None:
+    """Refuse a scenario seed that is not a non-negative integer."""
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise KinemarkError(f"the seed must be a non-negative integer, not {seed!r}")
+
+
 def scenario_clips(seed: int = 7, size: str = "demo") -> list[Clip]:
     """The clips of the demo ("demo") or test-size ("tiny") set, not yet rendered."""
     if size not in SIZES:
         raise KinemarkError(f"unknown scenario size {size!r}; choose one of {', '.join(SIZES)}")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise KinemarkError(f"the seed must be a non-negative integer, not {seed!r}")
+    check_seed(seed)
     spec = SIZES[size]
     out = []
     for (p, s, ex, view, side, light, clin, close) in spec["clips"]:
