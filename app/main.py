@@ -172,6 +172,8 @@ class MainWindow(QMainWindow):
         self.undo = QUndoStack(self)
         self._goes = 0                 # frame changes so far (see _start_at_queue_top)
         self._to_queue_top = None
+        self._auto_went = None         # _goes after the window's own move to the top of Up next
+        self._learning = False         # a Learn fit is running (pre-fill waits for it, and back)
         self.background = Background(self)
         self.frames = FrameWorker()
         self.frames.thumbnail.connect(self._on_thumbnail, Qt.QueuedConnection)
@@ -223,7 +225,7 @@ class MainWindow(QMainWindow):
         self.queue = QueuePanel()
         self.queue.setMinimumWidth(280)
         self.queue.chosen.connect(self.go)
-        self.queue.rerank.connect(self.refresh_queue)
+        self.queue.rerank.connect(lambda: self.refresh_queue(say=True))
         centre = self.centre = QWidget()
         cl = QVBoxLayout(centre)
         cl.setContentsMargins(0, 0, 0, 0)
@@ -1157,7 +1159,13 @@ class MainWindow(QMainWindow):
             return
         if self._read_only("Pre-fill unlabelled frames"):
             return
-        adapter = self._adapter          # None while it is still loading: the job loads its own
+        if self._learning:
+            # frames pre-filled now would miss the correction the fit is about to store
+            self.statusBar().showMessage("Pre-fill waits for Learn from accepted labels to finish; "
+                                         "start it again then", 8000)
+            return
+        adapter = self._adapter
+        unmoved = {self._goes, self._auto_went}   # where the window itself put the person          # None while it is still loading: the job loads its own
         title = "Pre-filling unlabelled frames"
 
         def work(project, progress, cancel):
@@ -1174,6 +1182,10 @@ class MainWindow(QMainWindow):
 
         def done(result):
             ch, rep = result
+            if auto and self._goes in unmoved:
+                # the first ranking ran before any proposal; go to the top of the new one, as a
+                # first visit does, unless the person has moved (or edits: _start_at_queue_top)
+                self._to_queue_top = self._goes
             finished()
             self.after_change(ch)
             self.statusBar().showMessage(rep.summary(), 10000)
@@ -1223,6 +1235,13 @@ class MainWindow(QMainWindow):
         from ..core import ops
         if self._read_only("Learn from accepted labels"):
             return
+        if self.task.running:
+            # the pre-fill would go on proposing frames without the correction the fit stores
+            self.statusBar().showMessage("Learn waits for the pre-fill to finish (or cancel it in "
+                                         "the status bar); start it again then", 8000)
+            return
+        if self._learning:
+            return
         user = self.user_name
 
         def work(project, progress, cancel):
@@ -1230,16 +1249,22 @@ class MainWindow(QMainWindow):
             return ops.adapt(project, user=user)
 
         def done(result):
+            self._learning = False
             ch, corr = result
             self.after_change(ch)
             self.inform("Learn from accepted labels", ch.message)
             self.refresh_queue()
 
+        def bad(exc):
+            self._learning = False
+            self.reload_states()
+            self.refresh_queue()
+
         # not cancellable: the fit stores the correction and re-proposes frames at its end, and
         # cannot stop part-way; an error there may leave some frames re-proposed, so read them again
+        self._learning = True
         self.background.run("Learning from accepted labels", work, root=self.project.root, on_done=done,
-                            on_error=lambda exc: (self.reload_states(), self.refresh_queue()),
-                            cancellable=False)
+                            on_error=bad, cancellable=False)
 
     def ask_target(self):
         """Ask for the study's target number of accepted frames and store it (core.ops.set_target)."""
@@ -1313,7 +1338,9 @@ class MainWindow(QMainWindow):
 
     # ---- queue and overview ----------------------------------------------------------------------
 
-    def refresh_queue(self):
+    def refresh_queue(self, say: bool = False):
+        """Rank Up next again in the background; ``say``: tell the status bar what came of it
+        (the Re-rank button asks for that)."""
         if self.project is None:
             return
         self.queue.button.setEnabled(False)
@@ -1329,6 +1356,14 @@ class MainWindow(QMainWindow):
                 live = None
             self._live = live
             self._show_queue(entries, note)
+            if say:
+                shown = self.queue.entries
+                top = (f"; first: {self.describe_short(self.frame_by_id[shown[0].frame_id])}"
+                       if shown and shown[0].frame_id in self.frame_by_id else "")
+                self.statusBar().showMessage(
+                    f"Up next ranked again with everything labelled so far: {len(shown)} frame(s){top}"
+                    if shown else "Up next ranked again: nothing waits" + (f" ({note})" if note else ""),
+                    8000)
             self._start_at_queue_top(self.queue.entries)    # as shown: sent-back frames first
 
         def bad(exc):
@@ -1346,6 +1381,7 @@ class MainWindow(QMainWindow):
                 or not entries or entries[0].frame_id not in self.frame_by_id):
             return
         self.go(entries[0].frame_id)
+        self._auto_went = self._goes
 
     def _fold_into_queue(self, frames):
         """New labels arrived: update Up next incrementally (core.ranking.LiveQueue)."""
