@@ -33,7 +33,8 @@ MACHINE = ("model", "adapted", "propagated")
 
 
 class Handle(QGraphicsItem):
-    """One keypoint. Circle: a person's point; diamond: a machine's (model, tracker) not yet confirmed.
+    """One keypoint. Circle: a person's point; diamond: a machine's (model, tracker) not yet confirmed,
+    with a white pip at its centre when the project's correction adapted it (core.adapt).
     Filled: visible; ring: occluded. Not drawn when not in frame. A small square badge at the
     upper left: a reviewer left a note on this keypoint (the note is the tooltip)."""
 
@@ -43,6 +44,7 @@ class Handle(QGraphicsItem):
         self.colour = QColor(colour)
         self.v = 0
         self.machine = False
+        self.adapted = False
         self.current = False
         self.note = ""
         self.setFlag(QGraphicsItem.ItemIgnoresTransformations, True)
@@ -79,6 +81,10 @@ class Handle(QGraphicsItem):
             painter.drawPath(path)
             painter.setPen(QPen(self.colour, 2.5))
             painter.drawPath(path)
+        if self.adapted:    # the correction moved it: a white pip, dark-edged, at the centre
+            painter.setPen(QPen(QColor(theme.BLACK), 1.0))
+            painter.setBrush(QBrush(QColor("#ffffff")))
+            painter.drawEllipse(QPointF(0, 0), 2.2, 2.2)
         if self.note:
             painter.setPen(QPen(QColor(theme.BLACK), 1.2))
             painter.setBrush(QBrush(QColor(theme.VERMILLION)))
@@ -267,6 +273,7 @@ class FrameCanvas(QGraphicsView):
             x, y, v = (float(kps[i, 0]), float(kps[i, 1]), int(kps[i, 2]))
             h.v = v
             h.machine = sources[i] in MACHINE
+            h.adapted = sources[i] == "adapted"
             h.current = i == self.current
             h.setPos(x, y)
             h.setVisible(v > 0)

@@ -3,7 +3,8 @@
 Palette: the Okabe-Ito colour-blind-safe set (Okabe & Ito, "Color Universal
 Design", 2002/2008), eight colours that stay distinguishable for the common
 forms of colour blindness. Colour is never the only cue: keypoint handles
-also differ by shape (circle for a person's point, diamond for a machine's)
+also differ by shape (circle for a person's point, diamond for a machine's, with a white
+centre pip when the project's correction adapted it)
 and fill (filled visible, ring occluded), and states carry their names.
 """
 from __future__ import annotations

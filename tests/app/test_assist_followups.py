@@ -82,3 +82,34 @@ def test_window_goes_to_the_top_of_up_next_after_the_first_prefill(qtbot, clip_p
     # on the code before this test the window stayed at the top of the ranking made before any
     # proposal (a different frame for this clip: the test timed out there)
     w.close()
+
+
+def _render(handle):
+    from PySide6.QtGui import QColor, QImage, QPainter
+    img = QImage(40, 40, QImage.Format_ARGB32)
+    img.fill(QColor(0, 0, 0, 0))
+    p = QPainter(img)
+    p.translate(20, 20)
+    handle.paint(p, None)
+    p.end()
+    return img
+
+
+def test_adapted_points_are_drawn_apart_from_raw_model_points(qtbot, window):
+    """A point the project's correction moved must not look like the raw model's: the canvas
+    marks it (a white pip at the centre of the diamond), for visible and occluded points alike."""
+    import numpy as np
+    c = window.canvas
+    kps = np.column_stack([np.full(17, 50.0), np.full(17, 50.0), np.full(17, 2.0)])
+    kps[[1, 3], 2] = 1                                   # occluded: drawn as rings
+    c.set_points(kps, ["model", "adapted", "adapted", "model"] + ["model"] * 13)
+    for h in c._handles:
+        h.current = False
+    raw, adapted_ring, adapted, raw_ring = c._handles[:4]
+    assert all(h.machine for h in (raw, adapted_ring, adapted, raw_ring))
+    px = _render(raw).pixelColor(20, 20)                 # raw, visible: filled in its colour
+    assert (px.red(), px.green(), px.blue()) == (raw.colour.red(), raw.colour.green(), raw.colour.blue())
+    assert _render(raw_ring).pixelColor(20, 20).alpha() == 0     # raw, occluded: an empty ring
+    for h in (adapted, adapted_ring):
+        px = _render(h).pixelColor(20, 20)
+        assert px.alpha() == 255 and min(px.red(), px.green(), px.blue()) > 230, "white pip at the centre"
