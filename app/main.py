@@ -1164,8 +1164,8 @@ class MainWindow(QMainWindow):
             self.statusBar().showMessage("Pre-fill waits for Learn from accepted labels to finish; "
                                          "start it again then", 8000)
             return
-        adapter = self._adapter
-        unmoved = {self._goes, self._auto_went}   # where the window itself put the person          # None while it is still loading: the job loads its own
+        adapter = self._adapter          # None while it is still loading: the job loads its own
+        unmoved = {self._goes, self._auto_went}   # where the window itself put the person
         title = "Pre-filling unlabelled frames"
 
         def work(project, progress, cancel):

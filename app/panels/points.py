@@ -99,7 +99,8 @@ class KeypointPanel(QWidget):
         hh.setSectionResizeMode(3, QHeaderView.Stretch)
         self.table.cellClicked.connect(lambda r, c: self.picked.emit(r))
         lay.addWidget(self.table, 1)
-        self.legend = QLabel("●  a person's point\n◆  model or tracker, not yet confirmed\n◈  adapted by the project's correction (white centre)\n"
+        self.legend = QLabel("●  a person's point\n◆  model or tracker, not yet confirmed\n"
+                             "◈  adapted by the project's correction (white centre)\n"
                              "filled: visible · ring: occluded · ■ a reviewer's note (point at it to read)")
         self.legend.setObjectName("muted")
         self.legend.setWordWrap(True)
