@@ -359,17 +359,19 @@ def _joint_phrase(names: list[str]) -> str:
 
 
 def explain(joint_u: np.ndarray, names, uncertainty_pct: float, unlike: bool,
-            has_labels: bool, clip_rank: int) -> tuple[str, ...]:
+            has_labels: bool, clip_rank: int, *, weights: RankWeights | None = None) -> tuple[str, ...]:
     """Plain-words reasons for one queued frame. ``unlike``: its pose is far from every
-    labelled or already-queued pose (:data:`UNLIKE_DISTANCE`)."""
+    labelled or already-queued pose (:data:`UNLIKE_DISTANCE`). ``weights``: a signal the
+    ranking gave no weight is not given as a reason (it did not put the frame there)."""
     reasons = []
     order = np.argsort(-joint_u)
-    unsure = [names[j] for j in order[:3] if joint_u[j] >= 0.75]
+    use_u = weights is None or weights.uncertainty > 0
+    unsure = [names[j] for j in order[:3] if joint_u[j] >= 0.75] if use_u else []
     if unsure:
         reasons.append(f"model unsure about {_joint_phrase(unsure)}")
-    elif uncertainty_pct >= 0.75:
+    elif use_u and uncertainty_pct >= 0.75:
         reasons.append("model less sure than usual across the body")
-    if unlike:
+    if unlike and (weights is None or weights.novelty > 0):
         reasons.append("pose unlike any labelled frame" if has_labels else "pose unlike the others queued so far")
     if not reasons:
         reasons.append("adds coverage of this clip" if clip_rank == 0 else "fills a gap among queued frames")
@@ -474,7 +476,7 @@ class LiveQueue:
                 cr = seen_clip.get(self.media[i], 0)
                 seen_clip[self.media[i]] = cr + 1
                 reasons = explain(self.ju[i], skel.keypoints, self.unc_pct[i],
-                                  nv >= unlike_at, bool(self.labelled), cr)
+                                  nv >= unlike_at, bool(self.labelled), cr, weights=self.weights)
                 entries.append(QueueEntry(self.pool[i], int(self.media[i]), int(self.index[i]),
                                           score, u, nv, reasons))
         if len(entries) < batch:

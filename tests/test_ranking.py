@@ -251,6 +251,21 @@ def test_queue_reasons_name_the_unsure_joint_and_the_unlike_pose(project, tmp_pa
     assert not any("unsure" in r for r in by[fids[3]])
 
 
+def test_queue_reasons_name_only_signals_the_ranking_weighs(project, tmp_path):
+    """With a weight set to 0 the queue does not use that signal, so it must not give it as
+    the reason a frame is queued (the same frames as above: unsure left wrist, unlike pose)."""
+    from kinemark.core.ranking import rank_queue
+    fids = _reason_project(project, tmp_path)
+    no_nov = {e.frame_id: e.reasons for e in rank_queue(project, 9, weights=RankWeights(
+        dedup_window=-1, novelty=0.0))}
+    assert not any("unlike" in r for rs in no_nov.values() for r in rs)
+    assert any(r.startswith("model unsure about left wrist") for r in no_nov[fids[5]])
+    no_unc = {e.frame_id: e.reasons for e in rank_queue(project, 9, weights=RankWeights(
+        dedup_window=-1, uncertainty=0.0))}
+    assert not any("unsure" in r for rs in no_unc.values() for r in rs)
+    assert "pose unlike any labelled frame" in no_unc[fids[9]]
+
+
 def test_queue_reasons_do_not_depend_on_the_batch_size(project, tmp_path):
     from kinemark.core.ranking import rank_queue
     _reason_project(project, tmp_path)
