@@ -707,7 +707,7 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
     project.store.set_meta("adaptation", corr.to_json(), user_id=who.id)
     # also when the raw model is kept: frames still pre-filled with an earlier correction's
     # points go back to the raw proposal, as the new fit says they should
-    changed, outside = reapply(project, corr, user_id=who.id)
+    changed, outside, skipped = reapply(project, corr, user_id=who.id)
     names = [project.skeleton.keypoints[j] for j in np.flatnonzero(corr.use)]
     if corr.active:
         n_kernel = sum(corr.kind.get(int(j)) == "rbf" for j in np.flatnonzero(corr.use))
@@ -729,6 +729,8 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
         if changed:
             msg += (f"; {len(changed)} untouched frame(s) pre-filled with the earlier correction went back "
                     f"to the raw proposal")
+    if skipped:
+        msg += f"; {skipped} frame(s) saved by someone during the fit were left as they saved them"
     return Changes(annotations=tuple(changed), message=msg, details={"summary": corr.summary,
                                                                      "joints": names}), corr
 
@@ -741,15 +743,18 @@ def load_correction(project, model_hash: str) -> Correction | None:
     return corr if corr.model_hash == model_hash and corr.active else None
 
 
-def reapply(project, corr: Correction, *, user_id: int | None = None) -> tuple[list[int], int]:
+def reapply(project, corr: Correction, *, user_id: int | None = None) -> tuple[list[int], int, int]:
     """Re-pre-fill frames whose annotation is still the untouched model proposal.
 
     Returns (changed annotation ids, how many of those frames lie outside the
-    correction's support and so keep the raw proposal).
+    correction's support and so keep the raw proposal, how many were saved by
+    someone else while this ran and so were left as that person saved them).
+    Each write is checked against the version read, as a person's save is: in
+    team mode an annotator may be working on these frames meanwhile.
     """
     store = project.store
     changed = []
-    outside = 0
+    outside = skipped = 0
     for a in store.annotations([PREFILLED]):
         if not set(a.sources) <= {"model", "adapted"}:
             continue
@@ -762,6 +767,12 @@ def reapply(project, corr: Correction, *, user_id: int | None = None) -> tuple[l
         same = np.where(kps[:, 2:3] > 0, kps, 0.0)     # as stored: unlabelled points at (0, 0, 0)
         if tuple(src) == tuple(a.sources) and np.allclose(same, a.keypoints, rtol=0, atol=1e-9):
             continue            # nothing to change (e.g. outside the correction's support)
-        changed.append(store.save_annotation(a.frame_id, kps, src, state=PREFILLED, action="adapt",
-                                             user_id=user_id).id)
-    return changed, outside
+        try:
+            changed.append(store.save_annotation(a.frame_id, kps, src, state=PREFILLED, action="adapt",
+                                                 user_id=user_id, expected_version=a.version).id)
+        except KinemarkError:
+            now = store.annotation(a.frame_id)
+            if now is not None and now.version == a.version:
+                raise                       # not a concurrent save: a real error
+            skipped += 1                    # someone saved it meanwhile: theirs stays
+    return changed, outside, skipped

@@ -367,3 +367,43 @@ def test_a_refit_that_keeps_the_raw_model_takes_back_the_earlier_correction(proj
     np.testing.assert_allclose(back.keypoints, raw[fids[1]])
     assert set(back.sources) == {"model"}
     np.testing.assert_allclose(s.annotation(fids[2]).keypoints, touched)     # a person's point stays
+
+
+def test_a_refit_never_overwrites_a_save_made_while_it_ran(project, video, monkeypatch):
+    """In team mode an annotator may save a frame while a refit re-proposes the untouched
+    ones: the refit must check each write against the version it read (as a person's save
+    is checked) and leave that person's save in place."""
+    from kinemark.core import ops
+    from kinemark.core.adapt import fit_project
+    from kinemark.core.media import Sampling
+    from kinemark.core.model import ACCEPTED, PREFILLED
+    ops.add_media(project, [video], sampling=Sampling(every=10), participant="QB-01")
+    s = project.store
+    fids = [f.id for f in s.frames()][:3]
+    rng = np.random.default_rng(1)
+    region = {"cx": 80.0, "cy": 60.0, "w": 100.0, "h": 100.0, "angle": 0.0}
+    raw = {}
+    for fid in fids:
+        k = np.column_stack([rng.uniform(40, 120, 17), rng.uniform(20, 100, 17), np.full(17, 2.0)])
+        raw[fid] = k
+        s.save_proposal(fid, model_id="m", model_hash="a" * 64, keypoints=k, confidence=np.full(17, 0.9),
+                        signals={}, score=0.9, region=region)
+    s.save_annotation(fids[0], raw[fids[0]] + [1.0, 1.0, 0.0], ["human"] * 17, state=ACCEPTED)
+    earlier = raw[fids[1]].copy()
+    earlier[9, :2] += 6.0                       # an earlier correction's point: the refit takes it back
+    s.save_annotation(fids[1], earlier, ["model"] * 9 + ["adapted"] + ["model"] * 7, state=PREFILLED)
+    theirs = earlier.copy()
+    theirs[9, :2] += 3.0
+    real = s.proposal
+
+    def annotator_saves_first(frame_id, **kw):  # between the refit's read and its write
+        if frame_id == fids[1]:
+            s.save_annotation(fids[1], theirs, ["model"] * 9 + ["human"] + ["model"] * 7, state=PREFILLED)
+        return real(frame_id, **kw)
+
+    monkeypatch.setattr(s, "proposal", annotator_saves_first)
+    ch, corr = fit_project(project)
+    kept = s.annotation(fids[1])
+    np.testing.assert_allclose(kept.keypoints, theirs)
+    assert kept.sources[9] == "human"
+    assert "1 frame(s) saved by someone during the fit were left as they saved them" in ch.message
