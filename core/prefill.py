@@ -225,8 +225,10 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
                         kps, sources = res.keypoints, ["model"] * len(res.keypoints)
                         if corrector is not None:
                             kps, sources = corrector.apply(res, kps, sources)
-                        a = store.save_annotation(f.id, kps, sources, state=PREFILLED,
-                                                  action="prefill")
+                        # checked against the version read: a person's save landing in
+                        # between (team mode) is refused, not overwritten
+                        a = store.save_annotation(f.id, kps, sources, state=PREFILLED, action="prefill",
+                                                  expected_version=ann.version if ann is not None else 0)
                         ann_ids.append(a.id)
                     else:
                         report.human_kept += 1

@@ -119,6 +119,29 @@ def test_a_persons_points_are_never_written_over(two_videos):
     assert f0.id not in ids and f1.id not in ids
 
 
+def test_a_save_between_the_check_and_the_write_is_not_written_over(two_videos, monkeypatch):
+    """Team mode: a person may save a frame after pre-fill has read it as untouched and before
+    it writes; the write must be refused (named as that frame's failure), not replace the save."""
+    p = two_videos
+    f0 = p.store.frames()[0]
+    human = np.zeros((17, 3))
+    human[:, :2] = 50.0
+    human[:, 2] = 2
+    p.store.save_annotation(f0.id, human, ["human"] * 17, state=DRAFTING)
+    real, reads = p.store.annotation, []
+
+    def stale_first_read(fid, *a, **kw):
+        # pre-fill's own read, as it was just before the person's save: nothing there yet
+        reads.append(fid)
+        return None if fid == f0.id and reads.count(fid) == 1 else real(fid, *a, **kw)
+
+    monkeypatch.setattr(p.store, "annotation", stale_first_read)
+    _, rep = prefill(p, adapter=PixelModel(), frames="all", frame_ids=[f0.id])
+    monkeypatch.undo()
+    assert np.array_equal(p.store.annotation(f0.id).keypoints, human)
+    assert [fid for fid, _ in rep.failed] == [f0.id] and "changed by" in rep.failed[0][1]
+
+
 def test_cancel_keeps_the_finished_part_and_a_rerun_finishes(two_videos):
     p = two_videos
     cancel = threading.Event()
