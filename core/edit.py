@@ -77,7 +77,10 @@ class Working:
 
 
 def snapshot(project: Project, frame_id: int, person: int = 0) -> Snapshot | None:
-    a = project.store.annotation(frame_id, person)
+    return _snapshot_of(project.store.annotation(frame_id, person))
+
+
+def _snapshot_of(a) -> Snapshot | None:
     if a is None:
         return None
     return Snapshot(np.asarray(a.keypoints, float).copy(), tuple(a.sources), a.state)
@@ -264,21 +267,25 @@ def restore(project: Project, frames: dict, *, expect: dict, user: str | None = 
     who = project.user(user)
     ann_ids = []
     with store.tx():
-        before = {}
+        before, stored = {}, {}
         for fid in frames:
-            now = snapshot(project, fid, person)
+            stored[fid] = store.annotation(fid, person)
+            now = _snapshot_of(stored[fid])
             if not _same(expect.get(fid), now):
                 raise KinemarkError(f"frame {fid} changed since (now {now.state if now else 'blank'}); "
                                     f"it cannot be put back")
             before[fid] = now
+        # every write carries the version compared above: on PostgreSQL (read committed) another
+        # person's save can land between that read and these writes; it is refused, not lost
         for fid, target in frames.items():
+            a = stored[fid]
             if target is None:
-                a = store.annotation(fid, person)
                 if a is not None:
-                    store.delete_annotation(a.id, user_id=who.id, action=action)
+                    store.delete_annotation(a.id, user_id=who.id, action=action, expected_version=a.version)
             else:
                 a = store.save_annotation(fid, target.keypoints, target.sources, state=target.state,
-                                          person=person, user_id=who.id, action=action)
+                                          person=person, user_id=who.id, action=action,
+                                          expected_version=a.version if a is not None else 0)
                 ann_ids.append(a.id)
     return Changes(frames=tuple(frames), annotations=tuple(ann_ids), message=action,
                    details={"before": before})

@@ -878,7 +878,11 @@ class Store:
         return after
 
     def _conflict(self, annotation_id: int, had: int):
-        now = self.annotation_by_id(annotation_id)
+        row = self._db.execute(self._ANN_SELECT + " WHERE id=?", (annotation_id,)).fetchone()
+        if row is None:
+            raise KinemarkError(f"this frame's labels were removed by someone since (you had version "
+                                f"{had}); reload it before saving")
+        now = self._ann(row)
         who = self.user(now.updated_by).name if now.updated_by else "someone"
         raise KinemarkError(f"this frame was changed by {who} at {now.updated_at} (version {now.version}, "
                             f"you had {had}); reload it before saving")
@@ -1012,15 +1016,24 @@ class Store:
     # ---- used by the workspace
 
     def delete_annotation(self, annotation_id: int, *, user_id: int | None = None,
-                          action: str = "delete"):
-        """Remove one annotation (undo of a frame's first edit); the event log keeps what it held."""
+                          action: str = "delete", expected_version: int | None = None):
+        """Remove one annotation (undo of a frame's first edit); the event log keeps what it held.
+
+        ``expected_version``: the version the caller last saw; if the stored one differs (someone
+        saved in between), nothing is removed (compare-and-set, as in :meth:`save_annotation`).
+        """
         with self.tx() as db:
             before = self.annotation_by_id(annotation_id)
+            sql, args = "DELETE FROM annotations WHERE id=?", (annotation_id,)
+            if expected_version is not None:
+                sql, args = sql + " AND version=?", (annotation_id, expected_version)
             try:
-                db.execute("DELETE FROM annotations WHERE id=?", (annotation_id,))
+                cur = db.execute(sql, args)
             except _INTEGRITY:
                 raise KinemarkError("this annotation has review notes or other records pointing at it; "
                                     "it cannot be removed") from None
+            if expected_version is not None and cur.rowcount != 1:
+                self._conflict(annotation_id, expected_version)
             self._event(db, user_id, action, "annotation", annotation_id, self._ann_dict(before), None)
 
     def annotation_states(self, frame_ids: Iterable[int] | None = None, person: int = 0) -> dict[int, str]:

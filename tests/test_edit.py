@@ -130,6 +130,41 @@ def test_restore_refuses_when_someone_changed_the_frame(clip):
     assert p.store.annotation(fids[0]).keypoints[1].tolist() == [20.0, 21.0, 2.0]
 
 
+def _save_right_after_the_check(p, monkeypatch, fid):
+    """Team mode on PostgreSQL (read committed): another person's save can land after restore has
+    compared the frame with what the caller expects and before it writes. Simulated by saving
+    from inside that comparison, once it has passed."""
+    real = edit._same
+
+    def same_then_someone_saves(a, b):
+        ok = real(a, b)
+        if ok:
+            w = edit.working(p, fid)
+            kps = w.keypoints.copy()
+            kps[2] = [33.0, 34.0, 2.0]
+            p.store.save_annotation(fid, kps, ["human"] * K, state="drafting", expected_version=w.version)
+        return ok
+    monkeypatch.setattr(edit, "_same", same_then_someone_saves)
+
+
+@pytest.mark.parametrize("first_edit", [True, False], ids=["undo-removes", "undo-rewrites"])
+def test_restore_refuses_a_save_made_between_its_check_and_its_write(clip, monkeypatch, first_edit):
+    p, fids = clip
+    c1 = edit.set_point(p, fids[0], 0, 10.0, 11.0)
+    c = c1
+    if not first_edit:
+        c = edit.set_point(p, fids[0], 0, 50.5, 60.5)
+    after = edit.snapshot(p, fids[0])
+    _save_right_after_the_check(p, monkeypatch, fids[0])
+    # before the fix the undo went through and replaced (or removed) that save
+    with pytest.raises(KinemarkError, match="changed by"):
+        edit.restore(p, c.details["before"], expect={fids[0]: after})
+    monkeypatch.undo()
+    # the refused undo wrote nothing (here the simulated save shared its transaction, so it is
+    # rolled back with it; on a real server it would stay)
+    assert edit.snapshot(p, fids[0]).same(after)
+
+
 def test_hand_in_needs_every_point_confirmed(clip):
     p, fids = clip
     kps = np.column_stack([np.full(K, 5.0), np.full(K, 6.0), np.full(K, 2.0)])
