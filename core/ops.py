@@ -499,13 +499,18 @@ def claim_batch(project: Project, n: int = 20, *, lease_minutes: float = 60.0, u
     want = n
     new, renewed = [], []
     tried = set()
-    for _ in range(4):     # others may win some frames meanwhile: ask the queue for more
+    for attempt in range(4):     # others may win some frames meanwhile: ask the queue for more
         others = {f for f, (u, _) in project.store.claims().items() if u != who.id}
         queue = rank_queue(project, want + len(others) + len(tried))
         cand = [e.frame_id for e in queue if e.frame_id not in others and e.frame_id not in tried]
+        if attempt and not cand:
+            break
         got, mine = project.store.claim_frames(who.id, cand, n, lease_minutes * 60.0)
         new += got
-        renewed = mine
+        # the leases held before this call; later passes also see the frames taken just now
+        # (before, those were counted twice: once new, once renewed)
+        taken = set(new)
+        renewed = [f for f in mine if f not in taken]
         tried |= set(cand)
         if len(new) + len(renewed) >= n or not cand:
             break

@@ -227,6 +227,20 @@ def test_expired_leases_return_to_the_pool(tmp_path):
     p.close()
 
 
+def test_a_batch_larger_than_the_queue_counts_each_frame_once(tmp_path):
+    """Asking for more frames than the queue holds took them all but reported each one twice,
+    as new and as renewed (found by the session-8 command-line audit)."""
+    p = Project.create(tmp_path / "solo", COCO17, owner="lead")
+    fids = _frames(p, 5)
+    ch, new, renewed = ops.claim_batch(p, 20)
+    assert sorted(new) == sorted(fids) and renewed == []
+    assert "holds 5 frame(s)" in ch.message and "(5 new, 0 renewed)" in ch.message
+    # a second claim renews the same five and takes nothing new
+    _, new2, renewed2 = ops.claim_batch(p, 20)
+    assert new2 == [] and sorted(renewed2) == sorted(fids)
+    p.close()
+
+
 @pytest.mark.parametrize("minutes", [float("nan"), float("inf"), 0.0, -5.0, 1e9])
 def test_a_lease_length_must_be_sane(tmp_path, minutes):
     """A NaN lease was a database error; 0, negative and endless ones were accepted (an endless
