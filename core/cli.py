@@ -61,7 +61,7 @@ def cmd_new(a):
 
 def cmd_add(a):
     from . import ops
-    from .media import Sampling, display_name
+    from .media import Sampling, display_name, media_kind
     sampling = Sampling(every=a.every, seconds=a.seconds, count=a.count)
     if a.every is None and a.seconds is None and a.count is None:
         sampling = Sampling(every=1)
@@ -70,7 +70,10 @@ def cmd_add(a):
                                      session=a.session, sampling=sampling, user=a.user,
                                      progress=ProgressBar(), strict=not a.keep_going)
         for path, mid, n in rep.added:
-            print(f"added {path} as media {mid}: {n} frames ({sampling.describe()})")
+            if media_kind(path) == "image":      # the sampling rule is for videos and image folders
+                print(f"added {path} as media {mid}: 1 image")
+            else:
+                print(f"added {path} as media {mid}: {n} frames ({sampling.describe()})")
         for path, other in rep.duplicates:
             print(f"skipped {path}: already in the project as {other} (same checksum)")
         not_media = [path for path, why in rep.skipped if why == ops.NOT_MEDIA]

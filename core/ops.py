@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 import math
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable
 
@@ -49,6 +49,7 @@ class AddReport:
     duplicates: list       # (path, existing media path)
     skipped: list          # (path, reason) non-media files in folders
     failed: list           # (path, message) files that could not be imported
+    thinned: list = field(default_factory=list)   # (folder, images kept, images in it) by the sampling rule
 
 
 NOT_MEDIA = "not an image or video"
@@ -56,14 +57,17 @@ BAD_NAME = "its name is not valid UTF-8 text (rename the file)"
 MAX_SESSION = 1_000_000
 
 
-def _expand(paths: Iterable[Path]) -> tuple[list[Path], list]:
-    """The files to import, and the folder entries skipped with a reason.
+def _expand(paths: Iterable[Path], sampling: Sampling = Sampling()) -> tuple[list[Path], list, list]:
+    """The files to import, the folder entries skipped with a reason, and the image folders the
+    sampling rule thinned ((folder, kept, total)).
 
     A media file in a folder whose name is not UTF-8 is skipped (OpenCV would
     crash on it, see :func:`.media.check_name`); a file named on its own is
-    refused later, like any other unreadable file.
+    refused later, like any other unreadable file. The images of a folder are
+    taken as a sequence in name order: ``every`` N keeps every Nth, ``count`` K
+    keeps K evenly spaced; ``seconds`` is refused (images have no frame times).
     """
-    files, skipped = [], []
+    files, skipped, thinned = [], [], []
     for p in paths:
         p = Path(p)
         if p.is_dir():
@@ -72,6 +76,14 @@ def _expand(paths: Iterable[Path]) -> tuple[list[Path], list]:
             vids = [o for o in other if media_kind(o) == "video"]
             if not imgs and not vids:
                 raise KinemarkError("the folder holds no images or videos", where=str(p))
+            if imgs and sampling.seconds is not None:
+                raise KinemarkError("a folder of images has no frame times, so it cannot be sampled by "
+                                    "seconds; use --every N or --count K (taken in file-name order)",
+                                    where=str(p))
+            if imgs and (sampling.count is not None or (sampling.every or 1) > 1):
+                keep = sampling.indices(len(imgs), None)
+                thinned.append((p, len(keep), len(imgs)))
+                imgs = [imgs[i] for i in keep]
             for f in imgs + vids:
                 try:
                     check_name(f)
@@ -81,7 +93,7 @@ def _expand(paths: Iterable[Path]) -> tuple[list[Path], list]:
             skipped.extend((o, NOT_MEDIA) for o in other if media_kind(o) is None)
         else:
             files.append(p)
-    return files, skipped
+    return files, skipped, thinned
 
 
 def add_media(project: Project, paths: Iterable, *, participant: str | None = None,
@@ -95,7 +107,7 @@ def add_media(project: Project, paths: Iterable, *, participant: str | None = No
     transaction: a failure never leaves a half-imported file behind.
     """
     who = project.user(user)
-    files, skipped = _expand(paths)
+    files, skipped, thinned = _expand(paths, sampling)
     if not files and not skipped:
         raise KinemarkError("nothing to add")
     if session is not None and not participant:
@@ -103,7 +115,7 @@ def add_media(project: Project, paths: Iterable, *, participant: str | None = No
     if session is not None and not (isinstance(session, int) and not isinstance(session, bool)
                                     and 1 <= session <= MAX_SESSION):
         raise KinemarkError(f"--session must be a whole number from 1 to {MAX_SESSION:,}, not {session}")
-    report = AddReport([], [], skipped, [])
+    report = AddReport([], [], skipped, [], thinned)
     # Phase 1: read and check every file; nothing is written yet.
     probed = []
     seen_sha = {}
@@ -111,6 +123,8 @@ def add_media(project: Project, paths: Iterable, *, participant: str | None = No
         _tick(progress, n, len(files), f"reading {path.name}")
         try:
             check_name(path)          # before any message or OpenCV call uses the name
+            if not path.exists():
+                raise KinemarkError("file or folder not found", where=str(path))
             kind = media_kind(path)
             if kind is None:
                 raise KinemarkError(f"unsupported file type {path.suffix or '(none)'!r}; videos: "
@@ -157,6 +171,8 @@ def add_media(project: Project, paths: Iterable, *, participant: str | None = No
         msg += f", skipped {bad_names} media file(s) whose names are not valid UTF-8"
     if report.failed:
         msg += f", {len(report.failed)} failed"
+    for folder, kept, total in thinned:
+        msg += f"; kept {kept} of the {total} images in {folder.name} ({sampling.describe()})"
     return Changes(media=tuple(media_ids), frames=tuple(frame_ids), message=msg), report
 
 

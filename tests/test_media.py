@@ -157,6 +157,42 @@ def test_image_folder_skips_and_counts_other_files(project, tmp_path):
     assert "skipped 2 non-media" in ch.message
 
 
+def _image_folder(tmp_path, n=8):
+    d = tmp_path / "frames"
+    d.mkdir()
+    for i in range(n):
+        write_image(d / f"f{i:02d}.png", seed=i)
+    return d
+
+
+@pytest.mark.parametrize("rule,kept", [
+    (Sampling(every=3), ["f00", "f03", "f06"]),
+    (Sampling(count=3), ["f00", "f04", "f07"]),     # evenly spaced over 8, as for video frames
+    (Sampling(every=1), [f"f{i:02d}" for i in range(8)]),
+])
+def test_a_sampling_rule_thins_an_image_folder_in_name_order(project, tmp_path, rule, kept):
+    """The rule used to be ignored for image folders while the command line said it applied."""
+    d = _image_folder(tmp_path)
+    ch, rep = ops.add_media(project, [d], sampling=rule)
+    assert [p.stem for p, _, _ in rep.added] == kept
+    if len(kept) < 8:
+        assert rep.thinned == [(d, len(kept), 8)] and f"kept {len(kept)} of the 8 images" in ch.message
+    else:
+        assert rep.thinned == [] and "kept" not in ch.message
+
+
+def test_an_image_folder_cannot_be_sampled_by_seconds(project, tmp_path):
+    d = _image_folder(tmp_path, 3)
+    with pytest.raises(KinemarkError, match="no frame times"):
+        ops.add_media(project, [d], sampling=Sampling(seconds=1.0))
+    assert project.store.frame_count() == 0
+
+
+def test_a_missing_folder_is_named_as_missing(project, tmp_path):
+    with pytest.raises(KinemarkError, match="not found"):
+        ops.add_media(project, [tmp_path / "no_such_folder"])
+
+
 @pytest.mark.parametrize("kind", ["zero", "truncated_mp4", "truncated_avi", "unsupported", "not_video",
                                   "missing", "directory_image", "bad_image"])
 def test_bad_media_is_refused_and_project_unchanged(project, tmp_path, kind):
