@@ -17,7 +17,8 @@ CAUTION = ("Kinemark labels and model output are research data, not a diagnosis.
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message):
-        raise KinemarkError(f"{self.prog}: {message} (see '{self.prog} --help')")
+        # main() adds the "kinemark: error:" prefix; the hint names the subcommand's help
+        raise KinemarkError(f"{message} (see '{self.prog} --help')")
 
 
 class ProgressBar:
@@ -415,6 +416,12 @@ def build_parser() -> argparse.ArgumentParser:
     return ap
 
 
+def _one_line(e: Exception) -> str:
+    """The message on one line: messages from libraries (the PostgreSQL driver's, say) may
+    hold line breaks or end with one."""
+    return "; ".join(line.strip() for line in str(e).splitlines() if line.strip())
+
+
 def main(argv=None) -> int:
     argv = sys.argv[1:] if argv is None else argv
     debug = "--debug" in argv
@@ -425,7 +432,7 @@ def main(argv=None) -> int:
     except KinemarkError as e:
         if debug:
             raise
-        print(f"kinemark: error: {e}", file=sys.stderr)
+        print(f"kinemark: error: {_one_line(e)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("kinemark: interrupted", file=sys.stderr)
@@ -437,7 +444,7 @@ def main(argv=None) -> int:
     except Exception as e:  # a bug: say so in one line unless --debug
         if debug:
             raise
-        print(f"kinemark: internal error ({type(e).__name__}: {e}); run again with --debug "
+        print(f"kinemark: internal error ({type(e).__name__}: {_one_line(e)}); run again with --debug "
               f"for the traceback and report it", file=sys.stderr)
         return 1
 

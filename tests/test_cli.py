@@ -37,6 +37,9 @@ def test_new_add_info_export(tmp_path, capsys):
     (["bench", "fuzz", "--cases", "-3"], "--cases must be above 0"),
     (["bench", "export", "--frames", "-5"], "--frames must be above 0"),
     (["bench", "team", "--seconds", "nan"], "--seconds must be above 0"),
+    # the PostgreSQL driver's message ends with a line break (found by the session-8 audit)
+    (["new", "{tmp}/t", "--db", "mysql://user@localhost/db"], "not a PostgreSQL connection string"),
+    (["add", "{tmp}/p0", "{tmp}/x.mp4", "--every", "abc"], "argument --every: invalid int value"),
 ])
 def test_user_errors_exit_2_with_one_line(tmp_path, capsys, args, match):
     (tmp_path / "p0").mkdir()
@@ -45,7 +48,8 @@ def test_user_errors_exit_2_with_one_line(tmp_path, capsys, args, match):
     err = capsys.readouterr().err
     assert rc == 2
     assert match in err
-    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
+    assert "Traceback" not in err and len(err.splitlines()) == 1 and err.endswith("\n")
+    assert err.startswith("kinemark: error: ") and not err.startswith("kinemark: error: kinemark")
 
 
 def test_no_traceback_from_the_installed_command(tmp_path):
