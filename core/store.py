@@ -1024,11 +1024,12 @@ class Store:
         """
         with self.tx() as db:
             before = self.annotation_by_id(annotation_id)
-            sql, args = "DELETE FROM annotations WHERE id=?", (annotation_id,)
-            if expected_version is not None:
-                sql, args = sql + " AND version=?", (annotation_id, expected_version)
             try:
-                cur = db.execute(sql, args)
+                if expected_version is None:
+                    cur = db.execute("DELETE FROM annotations WHERE id=?", (annotation_id,))
+                else:
+                    cur = db.execute("DELETE FROM annotations WHERE id=? AND version=?",
+                                     (annotation_id, expected_version))
             except _INTEGRITY:
                 raise KinemarkError("this annotation has review notes or other records pointing at it; "
                                     "it cannot be removed") from None
