@@ -106,8 +106,15 @@ def cmd_info(a):
     print("by participant (media, frames, accepted):")
     for code, m, f, acc in d["participants"]:
         print(f"  {code:<12} {m:>5} {f:>7} {acc:>7}")
-    for path in d["changed_media"]:
-        print(f"CHANGED ON DISK (relink needed): {path}")
+    if a.media:
+        print("media (id, participant, session, kind, frames kept, status, path):")
+        for mid, code, sess, kind, n, status, path in d["media_list"]:
+            print(f"  {mid:>5}  {code or '-':<12} {sess if sess is not None else '-':>4}  {kind:<5} {n:>7}  "
+                  f"{status:<7}  {path}")
+    for mid, _, _, _, _, status, path in d["media_list"]:
+        if status == "changed":
+            print(f"CHANGED ON DISK (relink needed): media {mid}, {path} "
+                  f"(kinemark relink {a.dir} {mid} [NEW_PATH])")
 
 
 def cmd_export(a):
@@ -302,6 +309,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("dir")
     s.add_argument("--set-target", type=int, metavar="N",
                    help="how many accepted frames the study aims for (shown as progress in the workspace)")
+    s.add_argument("--media", action="store_true",
+                   help="also list every media file with its id (the id 'kinemark relink' asks for)")
     s.set_defaults(fn=cmd_info)
 
     s = sub.add_parser("export", help="write COCO keypoints (accepted labels by default)")
@@ -355,7 +364,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("relink", help="accept a changed or moved media file after checking its frames")
     s.add_argument("dir")
-    s.add_argument("media", type=int, help="media id (see 'kinemark info')")
+    s.add_argument("media", type=int, help="media id (see 'kinemark info DIR --media')")
     s.add_argument("path", nargs="?", help="new location of the file")
     s.add_argument("--accept-changed-pixels", action="store_true",
                    help="accept a file whose frames decode to different pixels, such as a re-encoded copy "

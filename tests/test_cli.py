@@ -27,6 +27,24 @@ def test_new_add_info_export(tmp_path, capsys):
     assert json.loads((tmp_path / "o.json").read_text())["annotations"] == []
 
 
+def test_info_lists_media_ids_for_relink(tmp_path, capsys):
+    """relink asks for a media id, which info did not print (found by the session-8 audit)."""
+    from kinemark.core.project import Project
+    proj = tmp_path / "p"
+    run("new", proj)
+    v = write_video(tmp_path / "v.mp4", n_frames=30)
+    run("add", proj, v, "--participant", "QB-02", "--count", "4")
+    with Project.open(proj) as p:
+        mid = p.store.all_media()[0].id
+        p.store.set_media_status(mid, "changed")
+    capsys.readouterr()
+    assert run("info", proj, "--media") == 0
+    out = capsys.readouterr().out
+    row = next(line for line in out.splitlines() if line.strip().startswith(str(mid)))
+    assert row.split()[:6] == [str(mid), "QB-02", "1", "video", "4", "changed"] and "v.mp4" in row
+    assert f"CHANGED ON DISK (relink needed): media {mid}," in out and f"relink {proj} {mid}" in out
+
+
 @pytest.mark.parametrize("args,match", [
     (["info", "{tmp}/nothing"], "is not a folder"),
     (["new", "{tmp}/p", "--skeleton", "{tmp}/none.json"], "no built-in skeleton"),
