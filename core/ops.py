@@ -478,11 +478,12 @@ def import_coco(project: Project, file: str | Path, images_root: str | Path, *, 
 # ---- proposals ----------------------------------------------------------------------
 
 def propose(project: Project, *, frames: str = "unlabelled", frame_ids=None, workers: int = 1,
-            progress=None, cancel=None, adapter=None):
-    """Pre-fill frames with the project's pose model (see :mod:`.prefill`). Returns (Changes, report)."""
+            progress=None, cancel=None, adapter=None, boxes=None):
+    """Pre-fill frames with the project's pose model (see :mod:`.prefill`; ``boxes`` there).
+    Returns (Changes, report)."""
     from .prefill import prefill
     return prefill(project, frames=frames, frame_ids=frame_ids, workers=workers, progress=progress,
-                   cancel=cancel, adapter=adapter)
+                   cancel=cancel, adapter=adapter, boxes=boxes)
 
 
 # ---- queue and adaptation --------------------------------------------------------------

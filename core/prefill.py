@@ -61,7 +61,59 @@ def candidate_frames(project, which: str = "unlabelled"):
     return [f for f in frames if f.id not in touched]
 
 
-def _proposals(p, adapter, items, cancel, max_gap):
+# a person's box smaller than this (frame pixels, either side) is refused: a slip of the mouse
+MIN_BOX = 8.0
+# the model looks at the box grown by this share of its size on every side: people draw boxes
+# tight around the body, and this model wants room around it (a project choice, measured on the
+# demo renders: see box_region)
+BOX_MARGIN = 0.2
+
+
+def box_region(box, width: int, height: int):
+    """The crop region for a person's box ``(x0, y0, x1, y1)`` in frame pixels (corners in any
+    order): clipped to the frame, upright, then grown by ``BOX_MARGIN`` on every side (the crop
+    may reach past the frame's edges); a clear KinemarkError for a box that is not one.
+
+    Measured on the Quillon Bay demo renders (invented data; every fifth frame, 157 per draw,
+    the exact truth box as the drawn box; one person per frame, so this measures what the box
+    costs, not what it gains beside a second person). Mean OKS, margin 0.2 / 0.3 / 0.4 / 0.5 /
+    none (the box as drawn) / no box at all (the model's own crops): sample draw 0.757 / 0.759 /
+    0.709 / 0.704 / 0.695 / 0.761; second draw (seed 23) 0.749 / 0.722 / 0.709 / 0.686 / 0.695 /
+    0.771. Frames below OKS 0.5 with margin 0.2: 7 % and 12 % (as drawn 27 % and 24 %; no box
+    6 % and 3 %)."""
+    from .pose.base import Region
+    try:
+        x0, y0, x1, y1 = (float(v) for v in box)
+    except (TypeError, ValueError):
+        raise KinemarkError("a person's box is four numbers: x0, y0, x1, y1 in frame pixels") from None
+    if not np.isfinite([x0, y0, x1, y1]).all():
+        raise KinemarkError("a person's box must be finite numbers")
+    x0, x1 = sorted((min(max(x0, -0.5), width - 0.5), min(max(x1, -0.5), width - 0.5)))
+    y0, y1 = sorted((min(max(y0, -0.5), height - 0.5), min(max(y1, -0.5), height - 0.5)))
+    if x1 - x0 < MIN_BOX or y1 - y0 < MIN_BOX:
+        raise KinemarkError(f"the box ({x1 - x0:.0f} x {y1 - y0:.0f} px inside the frame) is too small: "
+                            f"draw it around the whole person")
+    grow = 1.0 + 2.0 * BOX_MARGIN
+    return Region((x0 + x1) / 2, (y0 + y1) / 2, (x1 - x0) * grow, (y1 - y0) * grow, 0.0, "drawn")
+
+
+def _usable(res) -> bool:
+    """A pose good enough to place the crop of a neighbouring frame (or a second look)."""
+    return res.score >= 0.5 and np.count_nonzero(res.keypoints[:, 2] > 0) >= 4
+
+
+def predict_in_box(adapter, img, region):
+    """The model's pose of the person in ``region`` (a person's box): the model runs on the box,
+    then once more on the crop its own pose gives (as for a neighbouring frame), which is kept
+    when that pose is usable and scores no lower."""
+    first = adapter.predict(img, region=region)
+    if not _usable(first):
+        return first
+    second = adapter.predict(img, previous=first.keypoints)
+    return second if _usable(second) and second.score >= first.score else first
+
+
+def _proposals(p, adapter, items, cancel, max_gap, boxes=None):
     """Yield (frame, PoseResult or None, error message or None) for ``items`` in order."""
     prev_media, prev_index, prev_kps = None, None, None
     for f in items:
@@ -73,8 +125,11 @@ def _proposals(p, adapter, items, cancel, max_gap):
             if (prev_media == f.media_id and prev_kps is not None
                     and 0 < f.frame_index - prev_index <= max_gap):
                 hint = prev_kps
-            res = adapter.predict(img, previous=hint)
-            ok = res.score >= 0.5 and np.count_nonzero(res.keypoints[:, 2] > 0) >= 4
+            if boxes and f.id in boxes:
+                res = predict_in_box(adapter, img, boxes[f.id])
+            else:
+                res = adapter.predict(img, previous=hint)
+            ok = _usable(res)
             prev_media, prev_index, prev_kps = f.media_id, f.frame_index, (res.keypoints if ok else None)
             yield f, res, None
         except Exception as e:  # isolate: one bad frame never stops the batch
@@ -83,12 +138,12 @@ def _proposals(p, adapter, items, cancel, max_gap):
             yield f, None, msg
 
 
-def _worker(root, make_adapter, items, out_q, cancel, max_gap):
+def _worker(root, make_adapter, items, out_q, cancel, max_gap, boxes=None):
     from .project import Project
     try:
         adapter = make_adapter()
         with Project.open(root) as p:
-            for item in _proposals(p, adapter, items, cancel, max_gap):
+            for item in _proposals(p, adapter, items, cancel, max_gap, boxes):
                 out_q.put(item)
     except Exception as e:
         out_q.put((None, None, str(e) if isinstance(e, KinemarkError) else f"{type(e).__name__}: {e}"))
@@ -139,7 +194,7 @@ def split_runs(frames, workers: int, min_run: int = 8) -> list[list]:
 
 def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None, make_adapter=None,
             workers: int = 1, progress=None, cancel: threading.Event | None = None,
-            max_gap: int = 2, corrector=None) -> tuple[Changes, PrefillReport]:
+            max_gap: int = 2, corrector=None, boxes: dict | None = None) -> tuple[Changes, PrefillReport]:
     """Propose keypoints for many frames and pre-fill their labels.
 
     ``adapter``: an already loaded model (used by a single worker); or
@@ -150,6 +205,11 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
     the next sampled one seeds that frame's crop (the neighbouring-pose crop).
     ``corrector``: optional per-project correction (``adapt``) applied before
     pre-filling; the raw proposal is stored either way.
+    ``boxes``: ``{frame id: (x0, y0, x1, y1)}``, a box a person drew around the one person the
+    model should look at (another person in the frame, say a therapist, drew its eye): those
+    frames are proposed from the box (:func:`predict_in_box`) even when this model proposed
+    them before, and the new proposal replaces the old one. Frames in ``boxes`` must be among
+    the frames asked for. The rule for a person's points stays: they are never written over.
     """
     from .pose import load_adapter
     t0 = time.perf_counter()
@@ -171,12 +231,22 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
         from .adapt import Corrector, load_correction
         corr = load_correction(project, adapter.model_hash)
         corrector = Corrector(corr) if corr is not None else None
+    regions = {}
+    if boxes:
+        for fid, box in boxes.items():
+            f = project.store.frame(fid)
+            m = project.store.media(f.media_id)
+            regions[fid] = box_region(box, m.width, m.height)
     cand = candidate_frames(project, frames)
     if frame_ids is not None:
         wanted = set(frame_ids)
         cand = [f for f in cand if f.id in wanted]
+    missing = set(regions) - {f.id for f in cand}
+    if missing:
+        raise KinemarkError(f"frame(s) {', '.join(map(str, sorted(missing)))} have a box but are not "
+                            f"among the frames to propose")
     report.candidates = len(cand)
-    done = project.store.proposed_frame_ids(adapter.model_hash)
+    done = project.store.proposed_frame_ids(adapter.model_hash) - set(regions)
     todo = [f for f in cand if f.id not in done]
     report.already_done = len(cand) - len(todo)
     todo.sort(key=lambda f: (f.media_id, f.frame_index))
@@ -191,12 +261,12 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
     if len(shards) == 1:
         # one worker: run in this thread. A second thread would only compete with ONNX
         # Runtime's own threads for the CPU while it stores.
-        items = _proposals(project, adapter, shards[0], cancel, max_gap)
+        items = _proposals(project, adapter, shards[0], cancel, max_gap, regions)
     else:
         out_q: queue.Queue = queue.Queue(maxsize=64)
         for n, shard in enumerate(shards):
             mk = (lambda a=adapter: a) if n == 0 else make_adapter
-            t = threading.Thread(target=_worker, args=(project.root, mk, shard, out_q, cancel, max_gap),
+            t = threading.Thread(target=_worker, args=(project.root, mk, shard, out_q, cancel, max_gap, regions),
                                  daemon=True)
             t.start()
             threads.append(t)

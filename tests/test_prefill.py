@@ -250,3 +250,95 @@ def test_worker_count_outside_the_machine_is_refused(two_videos, workers):
     with pytest.raises(KinemarkError, match="--workers must be between 1 and"):
         prefill(two_videos, adapter=PixelModel(), workers=workers)
     assert two_videos.store.proposal_count() == 0
+
+
+# ---- a person's box around the one person the model should look at ------------------------
+
+class BoxModel(PixelModel):
+    """The stand-in model, also keeping the region it was given; its pose is placed inside a
+    given region, so a proposal from a box can be told from one without."""
+
+    def __init__(self, score=0.9):
+        super().__init__()
+        self.regions, self.score = [], score
+
+    def predict(self, img, region=None, previous=None):
+        res = super().predict(img, region, previous)
+        self.regions.append(region)
+        kps = res.keypoints.copy()
+        if region is not None:
+            kps[:, 0] = region.cx + np.linspace(-5, 5, 17)
+            kps[:, 1] = region.cy
+        elif previous is not None:      # a crop from a neighbouring pose: the pose stays there
+            kps[:, :2] = np.asarray(previous)[:, :2]
+        return PoseResult(kps, res.confidence, res.signals, region, self.score, None)
+
+
+def test_box_region_clips_orders_and_grows_the_box():
+    from kinemark.core.prefill import BOX_MARGIN, box_region
+    r = box_region((150, 90, 50, 10), 160, 120)        # corners in either order
+    assert (r.cx, r.cy, r.source, r.angle) == (100.0, 50.0, "drawn", 0.0)
+    assert r.w == pytest.approx(100 * (1 + 2 * BOX_MARGIN)) and r.h == pytest.approx(80 * (1 + 2 * BOX_MARGIN))
+    r = box_region((-40, -40, 60, 60), 160, 120)       # clipped to the frame (pixel centres -0.5 ..)
+    assert r.cx == pytest.approx((-0.5 + 60) / 2)
+    for bad, match in (((10, 10, 14, 80), "too small"), ((500, 500, 600, 600), "too small"),
+                       ((0, 0, float("nan"), 50), "finite"), ((1, 2, 3), "four numbers"),
+                       (("a", 0, 1, 1), "four numbers")):
+        with pytest.raises(KinemarkError, match=match):
+            box_region(bad, 160, 120)
+
+
+def test_a_box_re_proposes_a_frame_from_that_region(two_videos):
+    p = two_videos
+    f0, f1 = p.store.frames()[:2]
+    prefill(p, adapter=BoxModel())                    # every frame proposed without a box
+    assert p.store.annotation(f0.id).keypoints[0, 1] == 20.0
+    model = BoxModel()
+    _, rep = prefill(p, adapter=model, frames="all", frame_ids=[f0.id], boxes={f0.id: (60, 30, 100, 90)})
+    # proposed again although this model had proposed it, from the box (grown by the margin)
+    assert rep.proposed == 1 and rep.already_done == 0
+    assert model.regions[0] is not None and model.regions[0].source == "drawn"
+    assert (model.regions[0].cx, model.regions[0].cy) == (80.0, 60.0)
+    # the box's pose replaced the proposal and the untouched pre-fill; the other frame is as it was
+    assert p.store.proposal(f0.id).keypoints[0, 1] == 60.0
+    assert p.store.annotation(f0.id).keypoints[0, 1] == 60.0
+    assert p.store.annotation(f1.id).keypoints[0, 1] == 20.0
+
+
+def test_a_box_never_writes_over_a_persons_points(two_videos):
+    p = two_videos
+    f0 = p.store.frames()[0]
+    human = np.zeros((17, 3))
+    human[:, :2], human[:, 2] = 50.0, 2
+    p.store.save_annotation(f0.id, human, ["human"] * 17, state=DRAFTING)
+    _, rep = prefill(p, adapter=BoxModel(), frames="all", frame_ids=[f0.id], boxes={f0.id: (60, 30, 100, 90)})
+    assert rep.proposed == 1 and rep.human_kept == 1
+    assert np.array_equal(p.store.annotation(f0.id).keypoints, human)
+
+
+def test_a_box_for_a_frame_not_asked_for_is_refused_before_any_work(two_videos):
+    p = two_videos
+    f0, f1 = p.store.frames()[:2]
+    model = BoxModel()
+    with pytest.raises(KinemarkError, match="not among the frames"):
+        prefill(p, adapter=model, frames="all", frame_ids=[f1.id], boxes={f0.id: (60, 30, 100, 90)})
+    with pytest.raises(KinemarkError, match="too small"):
+        prefill(p, adapter=model, frames="all", frame_ids=[f0.id], boxes={f0.id: (60, 30, 62, 90)})
+    assert model.calls == [] and p.store.proposals() == []
+
+
+@pytest.mark.parametrize("second_score,kept", [(0.95, "second"), (0.6, "first"), (0.3, "first")])
+def test_a_box_takes_a_second_look_only_when_it_scores_no_lower(second_score, kept):
+    from kinemark.core.prefill import predict_in_box
+    from kinemark.core.pose.base import Region
+
+    class TwoLooks:
+        def __init__(self):
+            self.n = 0
+
+        def predict(self, img, region=None, previous=None):
+            self.n += 1
+            kps = np.column_stack([np.full(17, float(self.n)), np.zeros(17), np.full(17, 2.0)])
+            return PoseResult(kps, np.ones(17), {}, region, 0.9 if self.n == 1 else second_score, None)
+    res = predict_in_box(TwoLooks(), np.zeros((8, 8, 3), np.uint8), Region(4, 4, 8, 8, 0.0, "drawn"))
+    assert res.keypoints[0, 0] == (2.0 if kept == "second" else 1.0)
