@@ -7,7 +7,8 @@ their size on screen while zooming; positions are kept as floats.
 
 Mouse: drag a handle to move it; drag elsewhere (or with the middle button)
 to pan; the wheel zooms about the pointer; double-click places the current
-keypoint there. A read-only view (``set_editable(False)``, the Sign-off page
+keypoint there; Shift+drag draws a box around one person, for the model to look at
+(``personBoxed``). A read-only view (``set_editable(False)``, the Sign-off page
 when the person may not correct the frame) still picks keypoints, pans and
 zooms, but moves nothing.
 
@@ -22,8 +23,8 @@ import numpy as np
 from PySide6.QtCore import QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import (QBrush, QColor, QFont, QFontMetricsF, QPainter, QPainterPath, QPen, QPixmap,
                            QPolygonF, QTransform)
-from PySide6.QtWidgets import (QGraphicsItem, QGraphicsLineItem, QGraphicsPixmapItem, QGraphicsScene,
-                               QGraphicsView)
+from PySide6.QtWidgets import (QGraphicsItem, QGraphicsLineItem, QGraphicsPixmapItem, QGraphicsRectItem,
+                               QGraphicsScene, QGraphicsView)
 
 from . import theme
 
@@ -127,6 +128,7 @@ class FrameCanvas(QGraphicsView):
     pointMoved = Signal(int, float, float)      # keypoint index, x, y (frame pixels), on release
     keypointPicked = Signal(int)                 # a handle was pressed
     placeRequested = Signal(float, float)        # double-click on the picture
+    personBoxed = Signal(float, float, float, float)   # Shift+drag: x0, y0, x1, y1 (frame pixels)
     zoomChanged = Signal(float)
 
     def __init__(self, parent=None):
@@ -158,6 +160,7 @@ class FrameCanvas(QGraphicsView):
         self.current = 0
         self._drag = None          # (index, offset QPointF, moved: bool)
         self._pan = None           # last viewport QPointF while panning
+        self._box = None           # (scene start QPointF, QGraphicsRectItem) while Shift+dragging
         self._cursor: QPointF | None = None
         self._fitted = True
         self._message = None
@@ -401,6 +404,18 @@ class FrameCanvas(QGraphicsView):
     def mousePressEvent(self, e):
         pos = e.position()
         self._cursor = pos
+        if (e.button() == Qt.LeftButton and e.modifiers() & Qt.ShiftModifier and self.editable
+                and self._size[0] > 0):
+            start = self._clamp(self.to_scene(pos))
+            rect = QGraphicsRectItem(QRectF(start, start))
+            pen = QPen(QColor(theme.TEXT), 1.5, Qt.DashLine)
+            pen.setCosmetic(True)             # the same width at every zoom
+            rect.setPen(pen)
+            rect.setZValue(5)
+            self.scene().addItem(rect)
+            self._box = (start, rect)
+            e.accept()
+            return
         if e.button() == Qt.LeftButton:
             idx = self._nearest(pos)
             if idx is not None and not self.editable:
@@ -424,6 +439,11 @@ class FrameCanvas(QGraphicsView):
     def mouseMoveEvent(self, e):
         pos = e.position()
         self._cursor = pos
+        if self._box is not None:
+            start, rect = self._box
+            rect.setRect(QRectF(start, self._clamp(self.to_scene(pos))).normalized())
+            e.accept()
+            return
         if self._drag is not None:
             idx, offset, _ = self._drag
             p = self._clamp(self.to_scene(pos) + offset)
@@ -445,6 +465,15 @@ class FrameCanvas(QGraphicsView):
         super().mouseMoveEvent(e)
 
     def mouseReleaseEvent(self, e):
+        if self._box is not None and e.button() == Qt.LeftButton:
+            start, rect = self._box
+            self._box = None
+            r = QRectF(start, self._clamp(self.to_scene(e.position()))).normalized()
+            self.scene().removeItem(rect)
+            if r.width() > 1 and r.height() > 1:       # not a Shift+click
+                self.personBoxed.emit(float(r.left()), float(r.top()), float(r.right()), float(r.bottom()))
+            e.accept()
+            return
         if self._drag is not None and e.button() == Qt.LeftButton:
             idx, _, moved = self._drag
             self._drag = None
@@ -486,5 +515,9 @@ class FrameCanvas(QGraphicsView):
         return self._drag is not None
 
     def cancel_drag(self):
-        """Put a handle that is being dragged back (e.g. the frame changed under it)."""
+        """Put a handle that is being dragged back (e.g. the frame changed under it); drop a box
+        being drawn."""
         self._drag = None
+        if self._box is not None:
+            self.scene().removeItem(self._box[1])
+            self._box = None

@@ -51,7 +51,7 @@ LABEL_PAGE, OVERVIEW_PAGE, SIGNOFF_PAGE = 0, 1, 2
 #: where the person may sign the frame off.
 NUDGE_COMMANDS = tuple(f"point.nudge_{d}{far}" for far in ("", "_far") for d in ("left", "right", "up", "down"))
 EDIT_COMMANDS = ("point.put", "point.visibility", "point.confirm", "point.confirm_all", "assist.carry",
-                 "assist.fill", "assist.model", "frame.hand_in") + NUDGE_COMMANDS
+                 "assist.fill", "assist.model", "assist.model_points", "frame.hand_in") + NUDGE_COMMANDS
 NAVIGATION_COMMANDS = ("frame.next", "frame.prev", "queue.next", "point.next", "point.prev")
 
 
@@ -241,6 +241,8 @@ class MainWindow(QMainWindow):
         self.canvas.pointMoved.connect(self._on_dragged)
         self.canvas.keypointPicked.connect(self.set_point_index)
         self.canvas.placeRequested.connect(lambda x, y: self.put_at(x, y))
+        self.canvas.personBoxed.connect(
+            lambda x0, y0, x1, y1: self._guarded(lambda: self.ask_model(box=(x0, y0, x1, y1)))())
         self.canvas.zoomChanged.connect(lambda s: self._update_frameline())
         self.canvas.resized.connect(self.frames.set_view_size)
         cl.addWidget(self.canvas, 1)
@@ -350,6 +352,7 @@ class MainWindow(QMainWindow):
             "assist.carry_reach": self.ask_carry_reach,
             "assist.fill": self.fill_from_keyframe,
             "assist.model": self.ask_model,
+            "assist.model_points": self.ask_model_around_points,
             "view.fit": self.canvas.fit,
             "view.zoom_in": lambda: self.canvas.zoom(1.25, self._zoom_anchor()),
             "view.zoom_out": lambda: self.canvas.zoom(0.8, self._zoom_anchor()),
@@ -1075,7 +1078,29 @@ class MainWindow(QMainWindow):
         self.background.run("Loading the pose model", work, root=self.project.root, on_done=ok,
                             on_error=bad, quiet=True)
 
-    def ask_model(self):
+    def ask_model_around_points(self):
+        """The model on the person around the points placed on this frame (two will do, say
+        the head and a foot): the keyboard's way to what Shift+drag does with the mouse."""
+        if self.project is None or self.frame_id is None:
+            return
+        w = edit.working(self.project, self.frame_id)
+        kps = w.keypoints
+        placed = [i for i, (src, v) in enumerate(zip(w.sources, kps[:, 2])) if v > 0 and src == "human"]
+        if len(placed) < 2:
+            self.statusBar().showMessage(
+                "place two or more points on the person first (the head and a foot will do), or "
+                "Shift+drag a box around them", 8000)
+            return
+        xy = kps[placed, :2]
+        x0, y0 = (float(v) for v in xy.min(axis=0))
+        x1, y1 = (float(v) for v in xy.max(axis=0))
+        # the points' own box, a little wider than their spread (a head and a foot make a line)
+        pad = 0.15 * max(x1 - x0, y1 - y0)
+        self.ask_model(box=(x0 - pad, y0 - pad, x1 + pad, y1 + pad))
+
+    def ask_model(self, box=None):
+        """Pre-fill this frame with the model; with ``box`` (x0, y0, x1, y1, frame pixels), from
+        that box around one person, even when the model proposed the frame before."""
         if self.project is None or self.frame_id is None:
             return
         from ..core import ops
@@ -1087,9 +1112,11 @@ class MainWindow(QMainWindow):
             return
         fid, adapter = self.frame_id, self._adapter
 
+        boxes = None if box is None else {fid: tuple(float(v) for v in box)}
+
         def work(project, progress, cancel):
             return ops.propose(project, frames="all", frame_ids=[fid], progress=progress, cancel=cancel,
-                               adapter=adapter)
+                               adapter=adapter, boxes=boxes)
 
         def done(result):
             ch, rep = result if isinstance(result, tuple) else (result, None)
@@ -1100,7 +1127,8 @@ class MainWindow(QMainWindow):
                     self.background.show_error(KinemarkError(
                         f"the model could not propose this frame: {rep.failed[0][1]}"))
 
-        self.background.run("Asking the model", work, root=self.project.root, on_done=done)
+        self.background.run("Asking the model" if box is None else "Asking the model about the boxed person",
+                            work, root=self.project.root, on_done=done)
 
     @staticmethod
     def _one_frame_words(rep) -> str:

@@ -56,6 +56,9 @@ COMMANDS: tuple[Command, ...] = (
     Command("assist.fill", "Fill from keyframe", ("I",),
             "fill the frames between the previous keyframe and this one in a straight line", "Assist"),
     Command("assist.model", "Ask the model", ("M",), "pre-fill this frame with the pose model", "Assist"),
+    Command("assist.model_points", "Ask the model about this person", ("Shift+M",),
+            "the model looks only at the person around the points you placed (two will do); "
+            "with the mouse, Shift+drag a box around them", "Assist"),
     Command("view.fit", "Fit frame", ("F", "0"), "show the whole frame", "View"),
     Command("view.zoom_in", "Zoom in", ("+", "="), "zoom in about the pointer", "View"),
     Command("view.zoom_out", "Zoom out", ("-",), "zoom out about the pointer", "View"),
