@@ -51,7 +51,8 @@ LABEL_PAGE, OVERVIEW_PAGE, SIGNOFF_PAGE = 0, 1, 2
 #: where the person may sign the frame off.
 NUDGE_COMMANDS = tuple(f"point.nudge_{d}{far}" for far in ("", "_far") for d in ("left", "right", "up", "down"))
 EDIT_COMMANDS = ("point.put", "point.visibility", "point.confirm", "point.confirm_all", "assist.carry",
-                 "assist.fill", "assist.model", "assist.model_points", "frame.hand_in") + NUDGE_COMMANDS
+                 "assist.fill", "assist.model", "assist.model_points", "assist.follow",
+                 "frame.hand_in") + NUDGE_COMMANDS
 NAVIGATION_COMMANDS = ("frame.next", "frame.prev", "queue.next", "point.next", "point.prev")
 
 
@@ -353,6 +354,7 @@ class MainWindow(QMainWindow):
             "assist.fill": self.fill_from_keyframe,
             "assist.model": self.ask_model,
             "assist.model_points": self.ask_model_around_points,
+            "assist.follow": self.follow_person,
             "view.fit": self.canvas.fit,
             "view.zoom_in": lambda: self.canvas.zoom(1.25, self._zoom_anchor()),
             "view.zoom_out": lambda: self.canvas.zoom(0.8, self._zoom_anchor()),
@@ -1098,17 +1100,39 @@ class MainWindow(QMainWindow):
         pad = 0.15 * max(x1 - x0, y1 - y0)
         self.ask_model(box=(x0 - pad, y0 - pad, x1 + pad, y1 + pad))
 
+    def follow_person(self):
+        """Propose the rest of this video again, following the person on this frame."""
+        if self.project is None or self.frame_id is None or not self._model_ready("Follow this person"):
+            return
+        from ..core import ops
+        fid, adapter = self.frame_id, self._adapter
+
+        def work(project, progress, cancel):
+            return ops.follow_person(project, fid, adapter=adapter, progress=progress, cancel=cancel)
+
+        def done(result):
+            ch, _ = result
+            self.after_change(ch)
+            self.statusBar().showMessage(ch.message, 15000)
+
+        self.background.run("Following the person", work, root=self.project.root, on_done=done)
+
+    def _model_ready(self, what: str) -> bool:
+        """The model can run and the project can store: else said in the status bar."""
+        from ..core import ops
+        if self.model_problem is not None or not hasattr(ops, "propose"):
+            why = self.model_problem or "this build has no model pre-fill"
+            self.statusBar().showMessage(f"The pose model is not available ({why}); label by hand.", 8000)
+            return False
+        return not self._read_only(what)
+
     def ask_model(self, box=None):
         """Pre-fill this frame with the model; with ``box`` (x0, y0, x1, y1, frame pixels), from
         that box around one person, even when the model proposed the frame before."""
         if self.project is None or self.frame_id is None:
             return
         from ..core import ops
-        if self.model_problem is not None or not hasattr(ops, "propose"):
-            why = self.model_problem or "this build has no model pre-fill"
-            self.statusBar().showMessage(f"The pose model is not available ({why}); label by hand.", 8000)
-            return
-        if self._read_only("Ask the model"):
+        if not self._model_ready("Ask the model"):
             return
         fid, adapter = self.frame_id, self._adapter
 

@@ -59,6 +59,9 @@ COMMANDS: tuple[Command, ...] = (
     Command("assist.model_points", "Ask the model about this person", ("Shift+M",),
             "the model looks only at the person around the points you placed (two will do); "
             "with the mouse, Shift+drag a box around them", "Assist"),
+    Command("assist.follow", "Follow this person", ("Shift+F",),
+            "propose the rest of this video again, each frame from the pose before it, starting "
+            "from this frame's points; stops where the model loses the person", "Assist"),
     Command("view.fit", "Fit frame", ("F", "0"), "show the whole frame", "View"),
     Command("view.zoom_in", "Zoom in", ("+", "="), "zoom in about the pointer", "View"),
     Command("view.zoom_out", "Zoom out", ("-",), "zoom out about the pointer", "View"),

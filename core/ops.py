@@ -486,6 +486,13 @@ def propose(project: Project, *, frames: str = "unlabelled", frame_ids=None, wor
                    cancel=cancel, adapter=adapter, boxes=boxes)
 
 
+def follow_person(project: Project, frame_id: int, *, box=None, adapter=None, progress=None, cancel=None):
+    """Propose the rest of the frame's video again, following one person (see
+    :func:`.prefill.follow_person`). Returns (Changes, report)."""
+    from .prefill import follow_person as follow
+    return follow(project, frame_id, box=box, adapter=adapter, progress=progress, cancel=cancel)
+
+
 # ---- queue and adaptation --------------------------------------------------------------
 
 def rank(project: Project, batch: int = 50):

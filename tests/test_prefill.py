@@ -258,20 +258,26 @@ class BoxModel(PixelModel):
     """The stand-in model, also keeping the region it was given; its pose is placed inside a
     given region, so a proposal from a box can be told from one without."""
 
-    def __init__(self, score=0.9):
+    def __init__(self, score=0.9, unsure_from=None):
         super().__init__()
-        self.regions, self.score = [], score
+        self.regions, self.score, self.unsure_from = [], score, unsure_from
 
     def predict(self, img, region=None, previous=None):
         res = super().predict(img, region, previous)
         self.regions.append(region)
         kps = res.keypoints.copy()
+        score = self.score
         if region is not None:
-            kps[:, 0] = region.cx + np.linspace(-5, 5, 17)
-            kps[:, 1] = region.cy
+            # a pose 20 x 40 px, 3 px right of the region's centre (so a chain of boxes drifts
+            # by 3 px a frame, which the test can follow)
+            kps[:, 0] = region.cx + 3 + np.linspace(-10, 10, 17)
+            kps[:, 1] = region.cy + np.linspace(-20, 20, 17)
+            boxed = sum(r is not None for r in self.regions)
+            if self.unsure_from is not None and boxed >= self.unsure_from:
+                score = 0.3
         elif previous is not None:      # a crop from a neighbouring pose: the pose stays there
             kps[:, :2] = np.asarray(previous)[:, :2]
-        return PoseResult(kps, res.confidence, res.signals, region, self.score, None)
+        return PoseResult(kps, res.confidence, res.signals, region, score, None)
 
 
 def test_box_region_clips_orders_and_grows_the_box():
@@ -300,8 +306,8 @@ def test_a_box_re_proposes_a_frame_from_that_region(two_videos):
     assert model.regions[0] is not None and model.regions[0].source == "drawn"
     assert (model.regions[0].cx, model.regions[0].cy) == (80.0, 60.0)
     # the box's pose replaced the proposal and the untouched pre-fill; the other frame is as it was
-    assert p.store.proposal(f0.id).keypoints[0, 1] == 60.0
-    assert p.store.annotation(f0.id).keypoints[0, 1] == 60.0
+    assert p.store.proposal(f0.id).keypoints[:, 1].mean() == pytest.approx(60.0)
+    assert p.store.annotation(f0.id).keypoints[:, 1].mean() == pytest.approx(60.0)
     assert p.store.annotation(f1.id).keypoints[0, 1] == 20.0
 
 
@@ -342,3 +348,72 @@ def test_a_box_takes_a_second_look_only_when_it_scores_no_lower(second_score, ke
             return PoseResult(kps, np.ones(17), {}, region, 0.9 if self.n == 1 else second_score, None)
     res = predict_in_box(TwoLooks(), np.zeros((8, 8, 3), np.uint8), Region(4, 4, 8, 8, 0.0, "drawn"))
     assert res.keypoints[0, 0] == (2.0 if kept == "second" else 1.0)
+
+
+def _centre(kps):
+    vis = kps[:, 2] > 0
+    lo, hi = kps[vis, :2].min(axis=0), kps[vis, :2].max(axis=0)
+    return (lo + hi) / 2
+
+
+def test_following_proposes_each_later_frame_from_the_pose_before_it(two_videos):
+    from kinemark.core.prefill import follow_person
+    p = two_videos
+    prefill(p, adapter=BoxModel())
+    media = p.store.all_media()[0].id
+    frames = p.store.frames(media)                 # 10 sampled frames of the first video
+    other = p.store.frames(p.store.all_media()[1].id)
+    other_before = [p.store.proposal(f.id).keypoints.copy() for f in other]
+    model = BoxModel()
+    ch, rep = follow_person(p, frames[0].id, box=(40, 40, 80, 110), adapter=model)
+    assert rep.proposed == 9 and "through 9 of the 9 later frame(s)" in ch.message and "lost" not in ch.message
+    boxed = [r for r in model.regions if r is not None]
+    assert len(boxed) == 9
+    # the first later frame from the given box; each next one from the pose before it
+    assert (boxed[0].cx, boxed[0].cy) == (60.0, 75.0)
+    for n, f in enumerate(frames[1:]):
+        assert (boxed[n].cx, boxed[n].cy) == pytest.approx((60.0 + 3 * n, 75.0))
+        assert _centre(p.store.annotation(f.id).keypoints) == pytest.approx((63.0 + 3 * n, 75.0))
+    # the start frame and the other video are left as they were
+    assert p.store.annotation(frames[0].id).keypoints[0, 1] == 20.0
+    assert all(np.array_equal(p.store.proposal(f.id).keypoints, k) for f, k in zip(other, other_before))
+
+
+def test_following_stops_where_the_model_loses_the_person(two_videos):
+    from kinemark.core.prefill import follow_person
+    p = two_videos
+    prefill(p, adapter=BoxModel())
+    frames = p.store.frames(p.store.all_media()[0].id)
+    ch, rep = follow_person(p, frames[0].id, box=(40, 40, 80, 110), adapter=BoxModel(unsure_from=4))
+    # the 4th boxed frame scores 0.3: it is proposed (and says so), nothing after it
+    assert rep.proposed == 4
+    assert f"lost them at video frame {frames[4].frame_index}" in ch.message
+    assert p.store.annotation(frames[5].id).keypoints[0, 1] == 20.0      # as the first pre-fill left it
+
+
+def test_following_keeps_a_persons_points_and_follows_them(two_videos):
+    from kinemark.core.prefill import follow_person
+    p = two_videos
+    prefill(p, adapter=BoxModel())
+    frames = p.store.frames(p.store.all_media()[0].id)
+    human = np.zeros((17, 3))
+    human[:, 0] = np.linspace(100, 140, 17)
+    human[:, 1] = np.linspace(40, 100, 17)
+    human[:, 2] = 2
+    p.store.save_annotation(frames[2].id, human, ["human"] * 17, state=DRAFTING)
+    model = BoxModel()
+    _, rep = follow_person(p, frames[0].id, box=(40, 40, 80, 110), adapter=model)
+    assert rep.human_kept == 1 and np.array_equal(p.store.annotation(frames[2].id).keypoints, human)
+    boxed = [r for r in model.regions if r is not None]
+    assert (boxed[2].cx, boxed[2].cy) == (120.0, 70.0)     # the frame after it: from the person's points
+
+
+def test_following_needs_a_pose_or_a_box(two_videos):
+    from kinemark.core.prefill import follow_person
+    p = two_videos
+    f0 = p.store.frames()[0]
+    with pytest.raises(KinemarkError, match="no pose to follow"):
+        follow_person(p, f0.id, adapter=BoxModel())
+    prefill(p, adapter=BoxModel(), frame_ids=[f0.id])
+    _, rep = follow_person(p, f0.id, adapter=BoxModel())    # from the frame's own pre-fill
+    assert rep.proposed == 9

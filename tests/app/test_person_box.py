@@ -33,7 +33,7 @@ class BoxStandIn(StandInModel):
             return res
         k = res.keypoints.copy()
         k[:, 0] = region.cx + np.linspace(-10, 10, 17)
-        k[:, 1] = region.cy
+        k[:, 1] = region.cy + np.linspace(-30, 30, 17)
         return PoseResult(k, res.confidence, res.signals, region, 0.9, None)
 
 
@@ -70,7 +70,7 @@ def test_shift_drag_asks_the_model_about_the_boxed_person(qtbot, clip_project, s
     assert r.w == pytest.approx((x1 - x0) * (1 + 2 * BOX_MARGIN), abs=1e-6)
     # the frame's untouched pre-fill now holds the boxed person's pose, and the view shows it
     ann = clip_project.store.annotation(fid)
-    assert ann.keypoints[0, 1] == pytest.approx(r.cy) and not np.allclose(ann.keypoints, before)
+    assert ann.keypoints[:, 1].mean() == pytest.approx(r.cy) and not np.allclose(ann.keypoints, before)
     assert np.allclose(w.working.keypoints, ann.keypoints)
     # no box item is left on the picture
     from PySide6.QtWidgets import QGraphicsRectItem
@@ -115,4 +115,25 @@ def test_shift_m_boxes_the_points_a_person_placed(qtbot, clip_project, settings,
     ann = clip_project.store.annotation(fid)
     assert ann.keypoints[0, :2].tolist() == [100.0, 30.0] and ann.sources[0] == "human"
     assert "kept" in w.statusBar().currentMessage()
+    w.close()
+
+
+def test_shift_f_follows_the_person_through_the_rest_of_the_clip(qtbot, clip_project, settings, box_model):
+    w = open_window(qtbot, clip_project.root, settings)
+    _wait(qtbot, w)
+    first = w.order[0]                       # frames 0, 3, 6, 9 of one clip
+    w.go(first)
+    start_pose = np.array(w.working.keypoints)
+    box_model.regions.clear()
+    _key(w, Qt.Key_F, Qt.ShiftModifier)
+    _wait(qtbot, w)
+    drawn = [r for r in box_model.regions if r is not None and r.source == "drawn"]
+    assert len(drawn) == 3, "one boxed look for each later frame"
+    vis = start_pose[:, 2] > 0
+    lo, hi = start_pose[vis, :2].min(axis=0), start_pose[vis, :2].max(axis=0)
+    assert (drawn[0].cx, drawn[0].cy) == pytest.approx(tuple((lo + hi) / 2))
+    for fid in w.order[1:]:            # each later pre-fill is the boxed look's pose (20 x 60 px)
+        k = clip_project.store.annotation(fid).keypoints
+        assert np.ptp(k[:, 0]) == pytest.approx(20.0) and np.ptp(k[:, 1]) == pytest.approx(60.0)
+    assert "followed the person through 3 of the 3 later frame(s)" in w.statusBar().currentMessage()
     w.close()
