@@ -115,7 +115,11 @@ class Background(QObject):
         job_id = self._next_id
         self._next_id += 1
         cancel = threading.Event()
-        signals = _Signals()
+        # parented to this object, so it lives and dies on the GUI thread: unparented, Python
+        # owned it, and the slots' closures hold it in a reference cycle that the garbage
+        # collector may break on any thread (a worker, the decode-ahead thread), deleting a
+        # QObject from a thread it does not belong to while its queued signals are delivered
+        signals = _Signals(self)
         dialog = None
         if not quiet:
             dialog = QProgressDialog(title, "Cancel" if cancellable else "", 0, 0, self.parent_widget)

@@ -356,6 +356,24 @@ def test_background_errors_are_shown_as_they_are(window, qtbot):
     assert box.text().startswith("Internal error") and "ZeroDivisionError" in box.detailedText()
 
 
+def test_a_jobs_signals_live_on_the_gui_thread_and_go_with_the_job(window, qtbot):
+    """Each job's signal object is owned by the Background (so Qt deletes it on the GUI thread,
+    by deleteLater, never the garbage collector on a worker thread) and is gone after the job."""
+    import threading
+
+    from PySide6.QtCore import QCoreApplication, QEvent
+
+    from kinemark.app.background import _Signals
+    bg = window.background
+    go = threading.Event()
+    bg.run("Testing", lambda project, progress, cancel: go.wait(5), root=None, quiet=True)
+    assert len(bg.findChildren(_Signals)) == 1
+    go.set()
+    qtbot.waitUntil(lambda: not bg.busy)
+    QCoreApplication.sendPostedEvents(None, QEvent.DeferredDelete)
+    assert bg.findChildren(_Signals) == []
+
+
 def test_background_cancel_stops_the_work(window, qtbot):
     import time
     seen = []
