@@ -80,7 +80,10 @@ def box_region(box, width: int, height: int):
     none (the box as drawn) / no box at all (the model's own crops): sample draw 0.757 / 0.759 /
     0.709 / 0.704 / 0.695 / 0.761; second draw (seed 23) 0.749 / 0.722 / 0.709 / 0.686 / 0.695 /
     0.771. Frames below OKS 0.5 with margin 0.2: 7 % and 12 % (as drawn 27 % and 24 %; no box
-    6 % and 3 %)."""
+    6 % and 3 %). Over every frame (783 and 784): on the frames where the model's own pose was
+    below OKS 0.5 (36 and 21), the box raised the mean OKS from 0.418 to 0.495 and from 0.406 to
+    0.522, and lifted 12 and 8 of them above 0.5; but boxing every frame would have put 36 and
+    71 others below 0.5. A box is for a frame whose proposal is wrong, not for every frame."""
     from .pose.base import Region
     try:
         x0, y0, x1, y1 = (float(v) for v in box)
