@@ -35,8 +35,12 @@ class PrefillReport:
 
     def summary(self) -> str:
         rate = self.proposed / self.seconds if self.seconds > 0 else 0.0
-        s = (f"{self.model_id}: proposed {self.proposed} frame(s) in {self.seconds:.1f} s "
-             f"({rate:.1f} frames/s); {self.already_done} already proposed by this model")
+        return (f"{self.model_id}: proposed {self.proposed} frame(s) in {self.seconds:.1f} s "
+                f"({rate:.1f} frames/s); {self.already_done} already proposed by this model" + self.outcome())
+
+    def outcome(self) -> str:
+        """What else happened, for the end of a message: kept labels, failures, a cancel."""
+        s = ""
         if self.human_kept:
             s += f"; {self.human_kept} with a person's labels left untouched"
         if self.failed:
@@ -420,12 +424,7 @@ def follow_person(project, frame_id: int, *, box=None, adapter=None, corrector=N
     if stop:
         msg += (f"; lost them at video frame {stop[-1].frame_index} (no confident pose there, or "
                 f"the model failed): box the person there and follow again")
-    if report.human_kept:
-        msg += f"; {report.human_kept} frame(s) with a person's points kept them"
-    if report.failed:
-        msg += f"; {len(report.failed)} failed (first: {report.failed[0][1]})"
-    if report.cancelled:
-        msg += "; cancelled"
+    msg += report.outcome()
     return (Changes(frames=tuple(f.id for f in later), proposals=tuple(proposal_ids),
                     annotations=tuple(ann_ids), message=msg), report)
 
