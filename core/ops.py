@@ -297,14 +297,13 @@ def set_target(project: Project, frames, *, user: str | None = None) -> Changes:
 # ---- summary ------------------------------------------------------------------------
 
 def info(project: Project) -> dict:
-    from collections import Counter
     s = project.store
     media = s.all_media()
-    kept = Counter(f.media_id for f in s.frames())
+    kept = s.frame_counts_by_media()
     return {
         # (id, participant, session, kind, frames kept, status, stored path): the id is what
         # relink asks for
-        "media_list": [(m.id, m.participant_code, m.session_number, m.kind, kept[m.id], m.status, m.path)
+        "media_list": [(m.id, m.participant_code, m.session_number, m.kind, kept.get(m.id, 0), m.status, m.path)
                        for m in media],
         "root": str(project.root),
         "skeleton": project.skeleton.name,
@@ -313,7 +312,6 @@ def info(project: Project) -> dict:
         "frames": s.frame_count(),
         "states": s.state_counts(),
         "participants": s.counts_by_participant(),
-        "changed_media": [m.path for m in media if m.status == "changed"],
         "schema_version": s.version(),
     }
 

@@ -235,9 +235,7 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
         adapter = make_adapter()
     report = PrefillReport(adapter.model_id, adapter.model_hash)
     if corrector is None:
-        from .adapt import Corrector, load_correction
-        corr = load_correction(project, adapter.model_hash)
-        corrector = Corrector(corr) if corr is not None else None
+        corrector = _project_corrector(project, adapter)
     regions = {}
     if boxes:
         for fid, box in boxes.items():
@@ -286,6 +284,13 @@ def prefill(project, *, frames: str = "unlabelled", frame_ids=None, adapter=None
     report.seconds = time.perf_counter() - t0
     return (Changes(proposals=tuple(proposal_ids), annotations=tuple(ann_ids), message=report.summary()),
             report)
+
+
+def _project_corrector(project, adapter):
+    """The project's stored correction for this model, ready to apply, or None."""
+    from .adapt import Corrector, load_correction
+    corr = load_correction(project, adapter.model_hash)
+    return Corrector(corr) if corr is not None else None
 
 
 def _store_all(project, adapter, items, total, corrector, report, progress):
@@ -340,20 +345,19 @@ def _pose_box(kps):
     return (*xy.min(axis=0), *xy.max(axis=0))
 
 
-def _following(p, adapter, frames, first_box, cancel, stop):
+def _following(p, adapter, frames, size, first_box, cancel, stop):
     """Yield (frame, result, error) along ``frames`` (one video, in order), each proposed from
     the box of the pose before it: the previous result, or a person's points where a frame holds
     them (those frames are proposed too; their points stay). ``stop`` gets the frame where the
     person was lost (no usable pose: score below 0.5 or fewer than 4 points), after which
-    nothing more is proposed."""
+    nothing more is proposed. ``size``: the video's (width, height)."""
     box = first_box
     for f in frames:
         if cancel.is_set():
             break
         try:
             img = p.read_frame(f.media_id, f.frame_index)
-            m = p.store.media(f.media_id)
-            res = predict_in_box(adapter, img, box_region(box, m.width, m.height))
+            res = predict_in_box(adapter, img, box_region(box, *size))
         except Exception as e:      # isolate, as in a batch; the chain cannot go on without a pose
             stop.append(f)
             yield f, None, str(e) if isinstance(e, KinemarkError) else f"{type(e).__name__}: {e}"
@@ -387,9 +391,9 @@ def follow_person(project, frame_id: int, *, box=None, adapter=None, corrector=N
     clips from the truth box on its first sampled frame: mean OKS on the later frames 0.773 and
     0.771 on the two draws (frames after a stop keep the proposal they had), against 0.770 and
     0.771 for the model's own crops; the chain stopped before the clip's end in 10 and 8 of the
-    24 clips. Going on past a frame without a usable
-    pose did worse: with the last good box for up to 3 such frames, 0.760 / 0.762 (still 8 and 7
-    stops); following every pose whatever its score, 0.707 / 0.739.
+    24 clips. Going on past a frame without a usable pose did worse: with the last good box for
+    up to 3 such frames, 0.760 / 0.762 (still 8 and 7 stops); following every pose whatever its
+    score, 0.707 / 0.739.
     """
     from .pose import load_adapter
     t0 = time.perf_counter()
@@ -408,15 +412,13 @@ def follow_person(project, frame_id: int, *, box=None, adapter=None, corrector=N
     if adapter is None:
         adapter = load_adapter(project)
     if corrector is None:
-        from .adapt import Corrector, load_correction
-        corr = load_correction(project, adapter.model_hash)
-        corrector = Corrector(corr) if corr is not None else None
+        corrector = _project_corrector(project, adapter)
     later = sorted((f for f in store.frames(start.media_id) if f.frame_index > start.frame_index),
                    key=lambda f: f.frame_index)
     report = PrefillReport(adapter.model_id, adapter.model_hash, candidates=len(later))
     cancel = cancel or threading.Event()
     stop: list = []
-    items = _following(project, adapter, later, box, cancel, stop)
+    items = _following(project, adapter, later, (m.width, m.height), box, cancel, stop)
     proposal_ids, ann_ids = _store_all(project, adapter, items, len(later), corrector, report, progress)
     report.cancelled = cancel.is_set()
     report.seconds = time.perf_counter() - t0

@@ -900,6 +900,10 @@ class Store:
         counts["blank"] = self.frame_count() - labelled
         return counts
 
+    def frame_counts_by_media(self) -> dict[int, int]:
+        """media id -> how many of its frames the project keeps (media with none are left out)."""
+        return dict(self._db.execute("SELECT media_id, COUNT(*) FROM frames GROUP BY media_id").fetchall())
+
     def counts_by_participant(self) -> list[tuple[str, int, int, int]]:
         """(participant code or '-', media, frames, accepted annotations) per participant."""
         q = """
