@@ -366,6 +366,7 @@ class MainWindow(QMainWindow):
             "signoff.accept_clean": self.signoff_accept_clean,
             "batch.prefill": lambda: self.prefill_unlabelled(),
             "batch.learn": self.learn_from_accepted,
+            "batch.tune": self.tune_model,
             "batch.export": self.ask_export,
             "project.target": self.ask_target,
             "help.keys": self.show_keys,
@@ -1213,8 +1214,8 @@ class MainWindow(QMainWindow):
             return
         if self._learning:
             # frames pre-filled now would miss the correction the fit is about to store
-            self.statusBar().showMessage("Pre-fill waits for Learn from accepted labels to finish; "
-                                         "start it again then", 8000)
+            self.statusBar().showMessage("Pre-fill waits for Learn from accepted labels (or Tune the "
+                                         "model) to finish; start it again then", 8000)
             return
         adapter = self._adapter          # None while it is still loading: the job loads its own
         unmoved = {self._goes, self._auto_went}   # where the window itself put the person
@@ -1317,6 +1318,50 @@ class MainWindow(QMainWindow):
         self._learning = True
         self.background.run("Learning from accepted labels", work, root=self.project.root, on_done=done,
                             on_error=bad, cancellable=False)
+
+    def tune_model(self):
+        """Tune the model's heatmap layers on the labels (core.tuning), pre-fill untouched frames
+        again from the model then in use, and load that model for the window's own proposals."""
+        if self.project is None:
+            return
+        from ..core import ops
+        from ..core.tuning import torch_available
+        title = "Tune the model on accepted labels"
+        if self._read_only(title):
+            return
+        if not torch_available():
+            self.statusBar().showMessage("Tuning the model needs PyTorch, which is not installed "
+                                         "(pip install 'kinemark[tuning]'); Learn from accepted labels "
+                                         "works without it", 10000)
+            return
+        if self.task.running or self._learning:
+            self.statusBar().showMessage("Tuning waits for the pre-fill or Learn to finish; start it "
+                                         "again then", 8000)
+            return
+        user = self.user_name
+
+        def work(project, progress, cancel):
+            return ops.tune(project, user=user, progress=progress, cancel=cancel)
+
+        def finished():
+            self._learning = False
+            self.reload_states()
+            self.refresh_queue()
+            self.check_model()          # the window's own proposals come from the model now in use
+
+        def done(result):
+            ch, _ = result
+            finished()
+            self.after_change(ch)
+            self.inform(title, ch.message)
+
+        def bad(exc):
+            finished()
+
+        # pre-fill waits while this runs (its frames would come from the model being replaced)
+        self._learning = True
+        self.background.run("Tuning the model on accepted labels", work, root=self.project.root,
+                            on_done=done, on_error=bad, on_cancelled=finished)
 
     def ask_target(self):
         """Ask for the study's target number of accepted frames and store it (core.ops.set_target)."""

@@ -80,6 +80,10 @@ COMMANDS: tuple[Command, ...] = (
             "run the pose model over every frame nobody has labelled yet, in the background", "Assist"),
     Command("batch.learn", "Learn from accepted labels", ("Ctrl+Shift+L",),
             "refit the project's correction of the model from accepted and handed-in labels", "Assist"),
+    Command("batch.tune", "Tune the model on accepted labels", ("Ctrl+Shift+U",),
+            "re-train the model's heatmap layers on accepted and handed-in labels (needs PyTorch; "
+            "kept only if it does better on participants it was not trained on), then pre-fill "
+            "untouched frames again", "Assist"),
     Command("batch.export", "Export accepted labels…", ("Ctrl+E",),
             "write accepted labels as COCO keypoints, optionally split by participant and de-identified",
             "Project"),

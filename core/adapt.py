@@ -21,6 +21,10 @@ people the fit did not see. A joint keeps its correction only when it beats
 the raw model on those held-out people;
 otherwise that joint falls back to the raw model. Human points are never
 touched: the correction only changes what pre-fill proposes.
+
+The other adaptation, re-training the model's heatmap layers on the labels, is in
+:mod:`.tuning`; while a project uses a tuned model, this correction is still fitted (on the raw
+model's proposals) but its points are not pre-filled.
 """
 from __future__ import annotations
 
@@ -675,8 +679,8 @@ def _pairs_from_project(project):
     for a in store.annotations([ACCEPTED, IN_REVIEW]):
         if not any(src == "human" or src == "imported" for src in a.sources):
             continue
-        prop = store.proposal(a.frame_id)
-        if prop is None or prop.adapted:
+        prop = store.proposal(a.frame_id, raw=True)   # not a tuned model's (core.tuning)
+        if prop is None:
             continue
         bbox = a.bbox or bbox_from_keypoints(a.keypoints)
         if bbox is None:
@@ -706,8 +710,11 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
     who = project.user(user)
     project.store.set_meta("adaptation", corr.to_json(), user_id=who.id)
     # also when the raw model is kept: frames still pre-filled with an earlier correction's
-    # points go back to the raw proposal, as the new fit says they should
-    changed, outside, skipped = reapply(project, corr, user_id=who.id)
+    # points go back to the raw proposal, as the new fit says they should; but while the project
+    # uses a tuned model (core.tuning), its proposals stay: the correction is of the raw model's
+    from .tuning import stored_tuning
+    tuned = stored_tuning(project, model_hash) is not None
+    changed, outside, skipped = ([], 0, 0) if tuned else reapply(project, corr, user_id=who.id)
     names = [project.skeleton.keypoints[j] for j in np.flatnonzero(corr.use)]
     if corr.active:
         n_kernel = sum(corr.kind.get(int(j)) == "rbf" for j in np.flatnonzero(corr.use))
@@ -731,6 +738,9 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
                     f"to the raw proposal")
     if skipped:
         msg += f"; {skipped} frame(s) saved by someone during the fit were left as they saved them"
+    if tuned:
+        msg += ("; the project pre-fills from its tuned model, so its proposals were left as they are "
+                "(kinemark adapt DIR --untune goes back to the raw model and this correction)")
     return Changes(annotations=tuple(changed), message=msg, details={"summary": corr.summary,
                                                                      "joints": names}), corr
 

@@ -108,8 +108,14 @@ def run(what: str, args=None):
         bench_propose(n or 60)
     if what in ("queue", "all"):
         from .bench_queue import run as run_queue
+        seeds = getattr(args, "tuning_seeds", None) or "0"
+        try:
+            tuning_seeds = tuple(int(x) for x in str(seeds).split(","))
+        except ValueError:
+            raise KinemarkError(f"--tuning-seeds must be whole numbers separated by commas, not {seeds!r}") from None
         run_queue(project_dir=getattr(args, "project", None) or "sample_project",
-                  scenario_seed=getattr(args, "scenario_seed", None))
+                  scenario_seed=getattr(args, "scenario_seed", None),
+                  tuning=bool(getattr(args, "tuning", False)), tuning_seeds=tuning_seeds)
     if what in ("team", "all"):
         from .bench_team import run as run_team
         run_team(getattr(args, "db", None), seconds=getattr(args, "seconds", None) or 60.0)

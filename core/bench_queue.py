@@ -150,10 +150,15 @@ def versions() -> str:
 
 
 def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_project", clips_dir=None,
-        say=print, scenario_seed: int | None = None):
+        say=print, scenario_seed: int | None = None, tuning: bool = False, tuning_seeds=(0,)):
     """``scenario_seed``: draw the invented scenario with this seed (other participants, same
     kinds of clips) into ``project_dir/clips`` when that folder has none, so the figures can be
-    checked on a second draw; a folder already holding another draw is refused."""
+    checked on a second draw; a folder already holding another draw is refused.
+
+    ``tuning``: also measure network tuning (core.tuning, needs PyTorch) at N=100 (or the largest
+    budget) for ``tuning_seeds``, each strategy's picks going through what ``kinemark adapt
+    --tune`` does: the held-out check on the labelled participants, then the model in use (the
+    tuned one, else the correction, else the raw model) scored on the held-out participants."""
     from pathlib import Path
     from .errors import KinemarkError
     from .project import Project
@@ -253,4 +258,87 @@ def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_p
     say(f"at N={b}: the 0.8x goals need combined adapted moves <= {need:.2f}; the same correction fitted "
         f"on every pool frame (simulated labels, no selection) reaches {pool_fit:.2f}"
         + (", so no choice of frames can meet them with this correction" if pool_fit > need else ""))
+    if tuning:
+        table["tuning"] = _tuning_table(root, pool, splits, tuning_seeds, b, sig, say)
     return table
+
+
+def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
+    """Network tuning on each strategy's first ``budget`` picks (see :func:`run`)."""
+    from . import tuning as T
+    from .adapt import from_crop
+    from .pose import landmark as L
+    from .pose.base import session_options
+    from .project import Project
+    import onnxruntime as ort
+    t0 = time.perf_counter()
+    with Project.open(root) as p:
+        data, base = T._base_model_bytes(p)
+        props = {q.frame_id: q for q in p.store.proposals(base) if not q.adapted and q.region}
+        graph, dec = T.feature_graph(data)
+        sess = ort.InferenceSession(graph, sess_options=session_options(2), providers=["CPUExecutionProvider"])
+        mapping = L.skeleton_mapping(p.skeleton)
+        pairs = []
+        for i, fid in enumerate(pool.frame_ids):
+            q = props[int(fid)]
+            reg = q.region
+            lab = from_crop(to_crop(q.keypoints[:, :2], reg) + pool.Rlab[i], reg)
+            ok = np.isfinite(lab).all(axis=1)
+            kps = np.column_stack([np.nan_to_num(lab), np.where(ok, pool.vis[i], 0)])
+            pairs.append((q, kps, pool.area[i] * reg["w"] * reg["h"], pool.group[i]))
+        td = T.collect(p, pairs, sess, dec, mapping)
+    # scored against the exact truth, with the same definitions as the correction's figures
+    truth = td.labels.copy()
+    for i, fid in enumerate(pool.frame_ids):
+        reg = props[int(fid)].region
+        xy = from_crop(to_crop(props[int(fid)].keypoints[:, :2], reg) + pool.Rtrue[i], reg)
+        ok = np.isfinite(xy).all(axis=1)
+        truth[i] = np.column_stack([np.nan_to_num(xy), np.where(ok, pool.vis[i], 0)])
+    from dataclasses import replace
+    exact = replace(td, labels=truth, cache=td.cache)
+    used = mapping[mapping >= 0]
+    chans = np.union1d(used, L.MODEL_FLIP_PERMUTATION[used])
+    chans = chans[chans < L.NUM_BODY].astype(int)
+    import torch
+    say(f"network tuning (torch {torch.__version__}): decoder inputs of {len(td.frame_ids)} frames computed "
+        f"in {time.perf_counter() - t0:.0f} s; N={budget}, seeds {list(seeds)}, the same held-out splits")
+    rows = {s: [] for s in STRATEGIES}
+    t_fit = []
+    for held in splits:
+        test = np.isin(pool.group, held)
+        cand, tpos = np.flatnonzero(~test), np.flatnonzero(test)
+        raw_xy = T.points(exact, tpos, T.heatmaps(dec, dec.weights, exact, tpos), mapping, chans)
+        _, raw_moves = T.moves(exact, tpos, raw_xy, sig)
+        for seed in seeds:
+            for strat in STRATEGIES:
+                rng = np.random.default_rng([seed, budget, STRATEGIES.index(strat)])
+                picks = np.sort(select(strat, pool, cand, budget, rng))
+                t1 = time.perf_counter()
+                sub = replace(td, features=[f[picks] for f in td.features], landmarks=td.landmarks[picks],
+                              regions=[td.regions[i] for i in picks], targets=td.targets[picks],
+                              labels=td.labels[picks], area=td.area[picks], groups=td.groups[picks],
+                              frame_ids=td.frame_ids[picks], proposed=td.proposed[picks], cache={})
+                summary = T.cross_validate(dec, sub, sig, mapping, chans)
+                w = T.train(dec, sub, np.arange(len(picks)))
+                t_fit.append(time.perf_counter() - t1)
+                xy = T.points(exact, tpos, T.heatmaps(dec, w, exact, tpos), mapping, chans)
+                _, tuned_moves = T.moves(exact, tpos, xy, sig)
+                corr = fit_correction(_subset(pool, picks, pool.Rlab), sig)
+                ev = evaluate(corr, _subset(pool, tpos, pool.Rtrue), sig)
+                corr_moves = corr.summary.get("heldout_moves_adapted") if corr.active else None
+                kept = not T.why_not(summary, corr_moves)
+                in_use = tuned_moves if kept else ev["moves_adapted"]
+                rows[strat].append((raw_moves, ev["moves_adapted"], tuned_moves, in_use, kept))
+    say(f"{'strategy':<12}| raw   correction  tuned  in use  (tuning kept)   [joints to move per frame, "
+        f"held-out participants, N={budget}]")
+    out = {}
+    for strat in STRATEGIES:
+        r = np.array(rows[strat], float)
+        out[strat] = r.mean(axis=0)
+        say(f"{strat:<12}| {r[:, 0].mean():4.2f}  {r[:, 1].mean():6.2f}  {r[:, 2].mean():9.2f}  "
+            f"{r[:, 3].mean():5.2f}   {int(r[:, 4].sum())} of {len(r)}")
+    rnd, uni, comb = out["random"], out["uniform"], out["combined"]
+    say(f"network tuning at N={budget}: combined in-use moves / random = {comb[3] / rnd[3]:.2f}, / uniform = "
+        f"{comb[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {comb[3] / comb[0]:.2f} (goal <= 0.5); "
+        f"a tuning with its held-out check took {np.median(t_fit):.1f} s (median)")
+    return out

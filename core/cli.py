@@ -229,9 +229,18 @@ def cmd_rank(a):
 
 def cmd_adapt(a):
     from . import ops
+    if a.tune and a.untune:
+        raise KinemarkError("--tune and --untune contradict each other: give one")
     with _open(a.dir) as p:
+        if a.untune:
+            ch, _ = ops.untune(p, user=a.user)
+            print(ch.message)
+            return
         ch, corr = ops.adapt(p, user=a.user)
-    print(ch.message)
+        print(ch.message)
+        if a.tune:
+            ch, _ = ops.tune(p, user=a.user, progress=ProgressBar())
+            print(ch.message)
 
 
 def cmd_demo(a):
@@ -386,6 +395,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("adapt", help="refit the per-project correction of proposals from accepted labels")
     s.add_argument("dir")
+    s.add_argument("--tune", action="store_true",
+                   help="also tune the model's heatmap layers on the labels (needs PyTorch; about a "
+                        "minute per hundred labels, then pre-fills untouched frames again)")
+    s.add_argument("--untune", action="store_true",
+                   help="stop using the project's tuned model (untouched frames go back to the raw model)")
     s.set_defaults(fn=cmd_adapt)
 
     s = sub.add_parser("claim", help="team mode: take a batch of frames from the queue as a lease")
@@ -420,6 +434,10 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--scenario-seed", type=int, default=None,
                    help="queue: draw the invented scenario with this seed into --project (a new folder) "
                         "and measure on it; the sample project is seed 7")
+    s.add_argument("--tuning", action="store_true",
+                   help="queue: also measure network tuning (adapt --tune; needs PyTorch) at N=100")
+    s.add_argument("--tuning-seeds", default=None, metavar="LIST",
+                   help="queue --tuning: selection seeds, e.g. 0,1 (default 0; each seed adds 18 tunings)")
     s.add_argument("--cases", type=int, default=None, help="crash: kills (default 50); fuzz: COCO files (10000)")
     s.set_defaults(fn=cmd_bench)
     return ap

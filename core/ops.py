@@ -505,6 +505,19 @@ def adapt(project: Project, *, with_embedding: bool = True, user: str | None = N
     return fit_project(project, with_embedding=with_embedding, user=user)
 
 
+def tune(project: Project, *, user: str | None = None, progress=None, cancel=None):
+    """Tune the model's heatmap layers on the project's labels (see :mod:`.tuning`).
+    Returns (Changes, Tuning)."""
+    from .tuning import tune_project
+    return tune_project(project, user=user, progress=progress, cancel=cancel)
+
+
+def untune(project: Project, *, user: str | None = None):
+    """Stop using the project's tuned model. Returns (Changes, Tuning or None)."""
+    from .tuning import untune as _untune
+    return _untune(project, user=user)
+
+
 # ---- team mode ----------------------------------------------------------------------------
 
 # how long a claimed batch may be kept from the rest of the team (a project choice: a working

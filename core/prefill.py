@@ -313,11 +313,14 @@ def _store_all(project, adapter, items, total, corrector, report, progress):
                     pid = store.save_proposal(
                         f.id, model_id=adapter.model_id, model_hash=adapter.model_hash,
                         keypoints=res.keypoints, confidence=res.confidence, signals=res.signals,
-                        score=res.score, region=_region_dict(res.region), embedding=res.embedding)
+                        score=res.score, region=_region_dict(res.region), embedding=res.embedding,
+                        adapted=getattr(adapter, "adapted", False))
                     proposal_ids.append(pid)
                     ann = store.annotation(f.id)
                     if _is_untouched(ann):
-                        kps, sources = res.keypoints, ["model"] * len(res.keypoints)
+                        kps = res.keypoints
+                        tuned = getattr(adapter, "adapted", False)
+                        sources = ["adapted" if tuned and v > 0 else "model" for v in kps[:, 2]]
                         if corrector is not None:
                             kps, sources = corrector.apply(res, kps, sources)
                         # checked against the version read: a person's save landing in

@@ -969,11 +969,16 @@ class Store:
                  json.dumps(sig), float(score), json.dumps(region) if region else None, emb,
                  int(adapted), now_iso()))
 
-    def proposal(self, frame_id: int, person: int = 0, model_hash: str | None = None) -> Proposal | None:
+    def proposal(self, frame_id: int, person: int = 0, model_hash: str | None = None, *,
+                 raw: bool = False) -> Proposal | None:
+        """The frame's latest proposal (of ``model_hash``); with ``raw``, the latest from a model
+        as shipped (not a project's tuned copy, see core.tuning)."""
         q = self._PROP_SELECT + " WHERE frame_id=? AND person=?"
         args = [frame_id, person]
         if model_hash:
             q += " AND model_hash=?"; args.append(model_hash)
+        if raw:
+            q += " AND adapted=0"
         row = self._db.execute(q + " ORDER BY id DESC LIMIT 1", args).fetchone()
         return self._prop(row) if row else None
 

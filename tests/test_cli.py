@@ -55,6 +55,7 @@ def test_info_lists_media_ids_for_relink(tmp_path, capsys):
     (["bench", "fuzz", "--cases", "-3"], "--cases must be above 0"),
     (["bench", "export", "--frames", "-5"], "--frames must be above 0"),
     (["bench", "team", "--seconds", "nan"], "--seconds must be above 0"),
+    (["bench", "queue", "--tuning", "--tuning-seeds", "0,x"], "--tuning-seeds must be whole numbers"),
     # the PostgreSQL driver's message ends with a line break (found by the session-8 audit)
     (["new", "{tmp}/t", "--db", "mysql://user@localhost/db"], "not a PostgreSQL connection string"),
     (["add", "{tmp}/p0", "{tmp}/x.mp4", "--every", "abc"], "argument --every: invalid int value"),

@@ -14,9 +14,17 @@ from .base import PoseAdapter, PoseResult, Region
 BUNDLED = "bundled"
 
 
-def load_adapter(project, *, threads: int = 2, **options) -> PoseAdapter:
-    """The project's pose model, loaded; a clear KinemarkError when it cannot be."""
+def load_adapter(project, *, threads: int = 2, tuned: bool = True, **options) -> PoseAdapter:
+    """The project's pose model, loaded; a clear KinemarkError when it cannot be.
+
+    ``tuned``: with the project's tuning of the bundled model's heatmap decoder, when it has one
+    (core.tuning); False for the model as shipped."""
     spec = project.store.get_meta("pose_model", BUNDLED)
+    if tuned and spec in (None, "", BUNDLED):
+        from ..tuning import stored_tuning
+        t = stored_tuning(project)
+        if t is not None:
+            options["tuning"] = t
     return adapter_for(spec, project.skeleton, threads=threads, root=project.root, **options)
 
 

@@ -78,6 +78,9 @@ class PoseAdapter(ABC):
 
     #: short stable identifier, e.g. "blazepose-ghum-full"
     model_id: str = "unknown"
+    #: True for a model a project has tuned on its own labels (core.tuning): its points are
+    #: pre-filled as adapted, and its proposals are stored apart from the raw model's
+    adapted: bool = False
 
     def __init__(self, skeleton: Skeleton):
         self.skeleton = skeleton

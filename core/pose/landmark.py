@@ -347,7 +347,8 @@ class LandmarkAdapter(PoseAdapter):
                  threads: int = 2, visible_threshold: float = 0.5,
                  absent_threshold: float = 0.2, flip: bool = True, refine: bool = True,
                  embedding: bool = True, flip_average: bool = True, passes: int = 3,
-                 crop_margin: float = 0.2, alignment_scale: float = 1.0, heatmap_decode: str = "dark"):
+                 crop_margin: float = 0.2, alignment_scale: float = 1.0, heatmap_decode: str = "dark",
+                 tuning=None):
         super().__init__(skeleton)
         if heatmap_decode not in ("dark", "window"):
             raise ValueError(f"heatmap_decode must be 'dark' or 'window', not {heatmap_decode!r}")
@@ -387,6 +388,15 @@ class LandmarkAdapter(PoseAdapter):
         data = self._read_bytes(self.model_path)
         self._hash = hashlib.sha256(data).hexdigest()
         self._check_description(self.model_path, self._hash)
+        # a project's tuned heatmap decoder (core.tuning), written into the graph in memory; a
+        # tuning of another model file (the bundled model was updated) is not applied
+        self.file_hash = self._hash
+        if tuning is not None and tuning.active and tuning.base_hash == self._hash:
+            from ..tuning import patched_model
+            data = patched_model(data, tuning.weights)
+            self._hash = tuning.model_hash()
+            self.model_id = f"{type(self).model_id}+tuned"
+            self.adapted = True
         self._session, self._embedding_name, self._batched = self._make_session(data, embedding)
         self._io = self._check_contract(self._session, self.model_path)
 
