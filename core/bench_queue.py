@@ -329,6 +329,8 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
                 kept = not T.why_not(summary, corr_moves)
                 in_use = tuned_moves if kept else ev["moves_adapted"]
                 rows[strat].append((raw_moves, ev["moves_adapted"], tuned_moves, in_use, kept))
+        say(f"  held out {'+'.join(held)}: {len(t_fit)} of {len(splits) * len(seeds) * len(STRATEGIES)} "
+            f"tunings done, {time.perf_counter() - t0:.0f} s so far")
     say(f"{'strategy':<12}| raw   correction  tuned  in use  (tuning kept)   [joints to move per frame, "
         f"held-out participants, N={budget}]")
     out = {}
