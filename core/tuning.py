@@ -35,7 +35,8 @@ model hash and its points count as adapted. A person's points are never touched.
 Measured (``kinemark bench queue --tuning``, 100 labelled frames, held-out participants,
 joints needing a move per frame): on the seed-7 draw raw 2.77, the correction 1.37 to 1.75,
 tuning 0.78 to 0.98 for every strategy but uncertainty-only (1.45); on the seed-23 draw raw
-2.72, tuning 0.87 to 0.96 (uncertainty-only 1.17). See DEVELOPERS.md for the full table.
+2.72, tuning 0.87 to 0.96 (uncertainty-only 1.17). Tuned on every frame of the labelling pool,
+0.75 and 0.61. See DEVELOPERS.md for the full table.
 
 PyTorch is an optional dependency (``pip install 'kinemark[tuning]'``); without it the
 correction of :mod:`.adapt` is the only adaptation.
