@@ -329,9 +329,12 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
                 corr = fit_correction(_subset(pool, picks, pool.Rlab), sig)
                 ev = evaluate(corr, _subset(pool, tpos, pool.Rtrue), sig)
                 corr_moves = corr.summary.get("heldout_moves_adapted") if corr.active else None
-                kept = not T.why_not(summary, corr_moves)
+                why = T.why_not(summary, corr_moves)
+                kept = not why
                 in_use = tuned_moves if kept else ev["moves_adapted"]
-                rows[strat].append((raw_moves, ev["moves_adapted"], tuned_moves, in_use, kept))
+                # refused because its held-out check did not beat the raw model (1) or the correction (2)
+                refused = 0 if kept else (1 if not summary["heldout_moves_tuned"] < summary["heldout_moves_raw"] else 2)
+                rows[strat].append((raw_moves, ev["moves_adapted"], tuned_moves, in_use, kept, refused))
         say(f"  held out {'+'.join(held)}: {len(t_fit)} of {len(splits) * len(seeds) * len(STRATEGIES)} "
             f"tunings done, {time.perf_counter() - t0:.0f} s so far")
     say(f"{'strategy':<12}| raw   correction  tuned  in use  (tuning kept)   [joints to move per frame, "
@@ -340,8 +343,11 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
     for strat in STRATEGIES:
         r = np.array(rows[strat], float)
         out[strat] = r.mean(axis=0)
+        why = [f"{int((r[:, 5] == k).sum())} as no better than {what}" for k, what in
+               ((1, "the raw model"), (2, "the correction")) if (r[:, 5] == k).any()]
         say(f"{strat:<12}| {r[:, 0].mean():4.2f}  {r[:, 1].mean():6.2f}  {r[:, 2].mean():9.2f}  "
-            f"{r[:, 3].mean():5.2f}   {int(r[:, 4].sum())} of {len(r)}")
+            f"{r[:, 3].mean():5.2f}   {int(r[:, 4].sum())} of {len(r)}"
+            + (f" (refused {', '.join(why)}, by the check on the labelled participants)" if why else ""))
     rnd, uni, comb = out["random"], out["uniform"], out["combined"]
     say(f"network tuning at N={budget}: combined in-use moves / random = {comb[3] / rnd[3]:.2f}, / uniform = "
         f"{comb[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {comb[3] / comb[0]:.2f} (goal <= 0.5); "
