@@ -329,8 +329,7 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
                 corr = fit_correction(_subset(pool, picks, pool.Rlab), sig)
                 ev = evaluate(corr, _subset(pool, tpos, pool.Rtrue), sig)
                 corr_moves = corr.summary.get("heldout_moves_adapted") if corr.active else None
-                why = T.why_not(summary, corr_moves)
-                kept = not why
+                kept = not T.why_not(summary, corr_moves)
                 in_use = tuned_moves if kept else ev["moves_adapted"]
                 # refused because its held-out check did not beat the raw model (1) or the correction (2)
                 refused = 0 if kept else (1 if not summary["heldout_moves_tuned"] < summary["heldout_moves_raw"] else 2)
