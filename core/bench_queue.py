@@ -332,7 +332,7 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
                 kept = not T.why_not(summary, corr_moves)
                 in_use = tuned_moves if kept else ev["moves_adapted"]
                 # refused because its held-out check did not beat the raw model (1) or the correction (2)
-                refused = 0 if kept else (1 if not summary["heldout_moves_tuned"] < summary["heldout_moves_raw"] else 2)
+                refused = 0 if kept else (1 if T.why_not(summary, None) else 2)
                 rows[strat].append((raw_moves, ev["moves_adapted"], tuned_moves, in_use, kept, refused))
         say(f"  held out {'+'.join(held)}: {len(t_fit)} of {len(splits) * len(seeds) * len(STRATEGIES)} "
             f"tunings done, {time.perf_counter() - t0:.0f} s so far")
