@@ -2,7 +2,8 @@
 
 Three ingredients, per candidate frame:
 
-* **uncertainty** of the model's proposal, from the per-joint signals stored
+* **uncertainty** of the proposal of the model in use (the tuned model's once
+  a network tuning is in use, else the raw model's), from the per-joint signals stored
   with it (flip disagreement, multi-peak heatmap entropy, first/second pass
   disagreement, and one minus the model's own confidence). Each signal is
   turned into its percentile rank over the candidate pool (so signals with
@@ -34,6 +35,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
+from .errors import KinemarkError
 from .model import LABELLED_STATES
 from .skeleton import Skeleton
 
@@ -378,12 +380,30 @@ def explain(joint_u: np.ndarray, names, uncertainty_pct: float, unlike: bool,
     return tuple(reasons)
 
 
+def current_model_hash(project) -> str | None:
+    """The model hash of the project's network tuning in use, or None (the raw model's
+    proposals then rank). A damaged stored tuning counts as none here: the queue is advice,
+    and pre-fill reports the damage when it loads the model."""
+    from .tuning import stored_tuning
+    try:
+        t = stored_tuning(project)
+    except KinemarkError:
+        return None
+    return t.model_hash() if t is not None else None
+
+
 class LiveQueue:
     """The project's queue, kept up to date as labels arrive.
 
     Built once from the stored proposals; :meth:`update` folds newly labelled
     frames in (O(pool x new labels)) instead of recomputing everything. New
     proposals (another pre-fill run) need :meth:`rebuild`.
+
+    Each frame is ranked on the proposal of the model now in use: the tuned model's when the
+    project has a network tuning in use (:mod:`.tuning`) and that model has proposed the
+    frame, else the raw model's. Once a tuning is in use, the model's doubt that matters is
+    the tuned model's: a frame the raw model got wrong and the tuned one gets right is no
+    longer worth a person's time for that reason.
     """
 
     def __init__(self, project, weights: RankWeights | None = None):
@@ -395,11 +415,16 @@ class LiveQueue:
         store, skel, w = self.project.store, self.project.skeleton, self.weights
         self.frames = {f.id: f for f in store.frames()}
         labelled = {a.frame_id: a for a in store.annotations(LABELLED_STATES)}
-        props = {}
+        in_use = current_model_hash(self.project)
+        props, tuned = {}, {}
         for p in store.proposals():
             if not p.adapted:
                 props[p.frame_id] = p     # the newest raw proposal per frame
+            elif p.model_hash == in_use:
+                tuned[p.frame_id] = p     # the tuned model in use proposed it
+        props.update(tuned)
         self.props = props
+        self.tuned = len(tuned)
         self.labelled = set(labelled)
         self.pool = sorted(fid for fid in props if fid not in labelled and fid in self.frames)
         self.pos = {fid: i for i, fid in enumerate(self.pool)}

@@ -288,3 +288,34 @@ def test_identical_poses_are_not_novel_from_rounding():
                      RankWeights(dedup_window=-1), pose[None])
     nov = [p[3] for p in q.select(5)]
     assert max(nov) < 0.01
+
+
+def test_queue_ranks_on_the_tuned_models_proposals_once_a_tuning_is_in_use(project, tmp_path):
+    """With a network tuning in use, the doubt that matters is the tuned model's: its
+    proposals (stored under the tuning's model hash, marked adapted) are what the queue ranks
+    on, and the raw ones again once the tuning is no longer in use. The tuned proposals here
+    are sure of frame 5's left wrist and unsure of frame 7's right wrist."""
+    from kinemark.core.ranking import rank_queue
+    from kinemark.core.tuning import META_KEY, Tuning
+    fids = _reason_project(project, tmp_path)
+    t = Tuning("h", {"w": np.ones(3, np.float32)}, {}, active=True)
+    rng = np.random.default_rng(5)
+    for n, fid in enumerate(fids):
+        flip, conf = np.full(17, 0.01), np.full(17, 0.95)
+        if n == 7:
+            flip[10], conf[10] = 0.6, 0.1        # right wrist (COCO index 10)
+        project.store.save_proposal(fid, model_id="m", model_hash=t.model_hash(), keypoints=_pose(rng, n == 9),
+                                    confidence=conf, signals={"flip_disagreement": flip}, score=0.9,
+                                    adapted=True)
+    w = RankWeights(dedup_window=-1)
+
+    def unsure():
+        return {e.frame_id: [r for r in e.reasons if "unsure" in r] for e in rank_queue(project, 9, weights=w)}
+
+    before = unsure()             # no tuning stored: the raw proposals
+    assert any("left wrist" in r for r in before[fids[5]]) and not before[fids[7]]
+    project.store.set_meta(META_KEY, t.to_json())
+    tuned = unsure()
+    assert any("right wrist" in r for r in tuned[fids[7]]) and not tuned[fids[5]]
+    project.store.set_meta(META_KEY, Tuning("h", {}, {}, active=False).to_json())
+    assert unsure() == before     # tuning no longer in use: back to the raw proposals
