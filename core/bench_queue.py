@@ -29,6 +29,8 @@ from .ranking import (RankingQueue, RankWeights, frame_uncertainty, joint_uncert
                       SIGNALS)
 
 STRATEGIES = ("random", "uniform", "kmeans", "uncertainty", "novelty", "combined")
+# the combined queue in two rounds with a tuning between them (the tuning part of the bench only)
+TWO_ROUNDS = "2 rounds"
 
 
 @dataclass
@@ -46,6 +48,9 @@ class Pool:
     Rlab: np.ndarray       # residual to the simulated annotator's label
     area: np.ndarray
     vis: np.ndarray
+    kps: np.ndarray        # the raw proposals (x, y, v) and their per-joint doubt, for re-ranking
+    conf: np.ndarray
+    sig: dict
 
 
 def _residual(prop_xy, target, conf, region, pv):
@@ -98,7 +103,7 @@ def load_pool(project, clips_dir, seed: int = 0) -> Pool:
     return Pool(np.array(ids), np.array(rows["media"]), np.array(rows["index"]), np.array(rows["group"]),
                 np.array(rows["raw"]), unc, pose_features(kps, skel), np.stack(rows["thumbs"]),
                 np.stack(rows["X"]), np.stack(rows["Rt"]), np.stack(rows["Rl"]), np.array(rows["area"]),
-                np.stack(rows["vis"]))
+                np.stack(rows["vis"]), kps, conf, sig)
 
 
 def select(strategy: str, pool: Pool, cand: np.ndarray, n: int, rng) -> np.ndarray:
@@ -278,6 +283,7 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
         graph, dec = T.feature_graph(data)
         sess = ort.InferenceSession(graph, sess_options=session_options(2), providers=["CPUExecutionProvider"])
         mapping = L.skeleton_mapping(p.skeleton)
+        skel = p.skeleton
         pairs = []
         for i, fid in enumerate(pool.frame_ids):
             q = props[int(fid)]
@@ -302,8 +308,38 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
     import torch
     say(f"network tuning (torch {torch.__version__}): decoder inputs of {len(td.frame_ids)} frames computed "
         f"in {time.perf_counter() - t0:.0f} s; N={budget}, seeds {list(seeds)}, the same held-out splits")
-    rows = {s: [] for s in STRATEGIES}
-    t_fit, pool_tuned = [], []
+    rows = {s: [] for s in STRATEGIES + (TWO_ROUNDS,)}
+    t_fit, pool_tuned, first_kept, done = [], [], [], 0
+
+    def tuned_on(picks):
+        """What ``kinemark adapt --tune`` does with labels of ``picks``: (weights, correction,
+        why not used ("" when used))."""
+        sub = replace(td, features=[f[picks] for f in td.features], landmarks=td.landmarks[picks],
+                      regions=[td.regions[i] for i in picks], targets=td.targets[picks],
+                      labels=td.labels[picks], area=td.area[picks], groups=td.groups[picks],
+                      frame_ids=td.frame_ids[picks], proposed=td.proposed[picks], cache={})
+        summary = T.cross_validate(dec, sub, sig, mapping, chans)
+        w = T.train(dec, sub, np.arange(len(picks)))
+        corr = fit_correction(_subset(pool, picks, pool.Rlab), sig)
+        corr_moves = corr.summary.get("heldout_moves_adapted") if corr.active else None
+        return w, corr, T.why_not(summary, corr_moves), summary
+
+    def second_round(first, cand, rng, w_first):
+        """The combined queue's next picks after ``first`` are labelled, ranked as LiveQueue
+        ranks them: on the tuned model's proposals when the first tuning is in use
+        (``w_first``), else on the raw ones; novelty against the labels of ``first``."""
+        rest = np.setdiff1d(cand, first)
+        doubt = {n: pool.sig[n][rest] for n in pool.sig}
+        kps = pool.kps[rest]
+        if w_first is not None:
+            xy, tuned = T.decoded(td, rest, T.heatmaps(dec, w_first, td, rest), mapping, chans)
+            doubt.update(tuned)       # visibility, presence and the passes' points are untouched
+            kps = np.concatenate([xy, kps[:, :, 2:]], axis=2)
+        unc = frame_uncertainty(joint_uncertainty(doubt, pool.conf[rest]))
+        q = RankingQueue(pose_features(kps, skel), unc, pool.media[rest], pool.index[rest],
+                         RankWeights(seed=int(rng.integers(1 << 30))), pose_features(td.labels[first], skel))
+        return rest[[p[0] for p in q.select(budget - len(first))]]
+
     for held in splits:
         test = np.isin(pool.group, held)
         cand, tpos = np.flatnonzero(~test), np.flatnonzero(test)
@@ -313,33 +349,34 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
         xy = T.points(exact, tpos, T.heatmaps(dec, w_pool, exact, tpos), mapping, chans)
         pool_tuned.append(T.moves(exact, tpos, xy, sig)[1])
         for seed in seeds:
-            for strat in STRATEGIES:
-                rng = np.random.default_rng([seed, budget, STRATEGIES.index(strat)])
-                picks = np.sort(select(strat, pool, cand, budget, rng))
+            for strat in STRATEGIES + (TWO_ROUNDS,):
+                rng = np.random.default_rng([seed, budget, (STRATEGIES + (TWO_ROUNDS,)).index(strat)])
                 t1 = time.perf_counter()
-                sub = replace(td, features=[f[picks] for f in td.features], landmarks=td.landmarks[picks],
-                              regions=[td.regions[i] for i in picks], targets=td.targets[picks],
-                              labels=td.labels[picks], area=td.area[picks], groups=td.groups[picks],
-                              frame_ids=td.frame_ids[picks], proposed=td.proposed[picks], cache={})
-                summary = T.cross_validate(dec, sub, sig, mapping, chans)
-                w = T.train(dec, sub, np.arange(len(picks)))
-                t_fit.append(time.perf_counter() - t1)
+                if strat == TWO_ROUNDS:
+                    first = np.sort(select("combined", pool, cand, budget // 2, rng))
+                    w1, _, why1, _ = tuned_on(first)
+                    first_kept.append(not why1)
+                    picks = np.sort(np.concatenate([first, second_round(first, cand, rng, None if why1 else w1)]))
+                else:
+                    picks = np.sort(select(strat, pool, cand, budget, rng))
+                w, corr, why, summary = tuned_on(picks)
+                done += 1
+                if strat != TWO_ROUNDS:
+                    t_fit.append(time.perf_counter() - t1)
                 xy = T.points(exact, tpos, T.heatmaps(dec, w, exact, tpos), mapping, chans)
                 _, tuned_moves = T.moves(exact, tpos, xy, sig)
-                corr = fit_correction(_subset(pool, picks, pool.Rlab), sig)
                 ev = evaluate(corr, _subset(pool, tpos, pool.Rtrue), sig)
-                corr_moves = corr.summary.get("heldout_moves_adapted") if corr.active else None
-                kept = not T.why_not(summary, corr_moves)
+                kept = not why
                 in_use = tuned_moves if kept else ev["moves_adapted"]
                 # refused because its held-out check did not beat the raw model (1) or the correction (2)
                 refused = 0 if kept else (1 if T.why_not(summary, None) else 2)
                 rows[strat].append((raw_moves, ev["moves_adapted"], tuned_moves, in_use, kept, refused))
-        say(f"  held out {'+'.join(held)}: {len(t_fit)} of {len(splits) * len(seeds) * len(STRATEGIES)} "
+        say(f"  held out {'+'.join(held)}: {done} of {len(splits) * len(seeds) * len(rows)} "
             f"tunings done, {time.perf_counter() - t0:.0f} s so far")
     say(f"{'strategy':<12}| raw   correction  tuned  in use  (tuning kept)   [joints to move per frame, "
         f"held-out participants, N={budget}]")
     out = {}
-    for strat in STRATEGIES:
+    for strat in STRATEGIES + (TWO_ROUNDS,):
         r = np.array(rows[strat], float)
         out[strat] = r.mean(axis=0)
         why = [f"{int((r[:, 5] == k).sum())} as no better than {what}" for k, what in
@@ -351,6 +388,11 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
     say(f"network tuning at N={budget}: combined in-use moves / random = {comb[3] / rnd[3]:.2f}, / uniform = "
         f"{comb[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {comb[3] / comb[0]:.2f} (goal <= 0.5); "
         f"a tuning with its held-out check took {np.median(t_fit):.1f} s (median)")
+    two = out[TWO_ROUNDS]
+    say(f"network tuning at N={budget}, {TWO_ROUNDS} ({budget // 2} combined picks, tuning, then "
+        f"{budget - budget // 2} ranked on the model then in use; the first tuning was kept in "
+        f"{sum(first_kept)} of {len(first_kept)}): in-use moves / random = {two[3] / rnd[3]:.2f}, "
+        f"/ uniform = {two[3] / uni[3]:.2f}")
     need = 0.8 * min(rnd[3], uni[3])
     ceiling = float(np.mean(pool_tuned))
     say(f"network tuning at N={budget}: the 0.8x goals need combined in-use moves <= {need:.2f}; tuning on "

@@ -515,18 +515,38 @@ def heatmaps(dec: DecoderGraph, weights: dict, data: TuningData, rows: np.ndarra
 def points(data: TuningData, rows: np.ndarray, hms: np.ndarray, mapping, channels) -> np.ndarray:
     """(len(rows), K, 2) frame pixels of the skeleton's points as the bundled model's adapter
     decodes them (DARK on the crop's and the mirror's heatmaps, the two averaged)."""
+    return decoded(data, rows, hms, mapping, channels, doubt=False)[0]
+
+
+def decoded(data: TuningData, rows: np.ndarray, hms: np.ndarray, mapping, channels, *,
+            doubt: bool = True) -> tuple[np.ndarray, dict]:
+    """The points of :func:`points` and, with ``doubt``, the two doubt signals of a proposal that
+    depend on the heatmaps, as the bundled model's adapter computes them: flip disagreement
+    (the crop's and the mirror's point apart, over the size of the pose) and the multiple-peak
+    heatmap entropy of the crop's heatmaps (Liu & Ferrari, ICCV 2017; :func:`decode.multipeak_entropy`).
+    The other signals (the passes' regressed points, visibility and presence) come from the
+    landmark head, which tuning does not change. Returns (points (n, K, 2), {signal: (n, K)})."""
     from .pose import landmark as L
+    from .pose.decode import multipeak_entropy
     K = len(mapping)
     cov = np.flatnonzero(mapping >= 0)
+    idx = mapping[cov]
     out = np.full((len(rows), K, 2), np.nan)
+    flip, ent = np.full((len(rows), K), np.nan), np.full((len(rows), K), np.nan)
     for r, i in enumerate(rows):
         lms = L._dark_points(data.landmarks[i].astype(np.float64), hms[r], channels)
         reg = data.regions[i]
         m = L.crop_to_frame_matrix(reg, L.INPUT_SIZE, L.INPUT_SIZE)
         a = L.model_to_frame(lms[0][:, :2], reg, m)
         b = L.model_to_frame(L.unmirror_landmarks(lms[1])[:, :2], reg, m)
-        out[r, cov] = ((a + b) / 2.0)[mapping[cov]]
-    return out
+        out[r, cov] = ((a + b) / 2.0)[idx]
+        if doubt:
+            ext = out[r, cov].max(axis=0) - out[r, cov].min(axis=0)
+            scale = float(np.sqrt(max(ext[0] * ext[1], 1.0)))
+            flip[r, cov] = np.hypot(*(b - a)[idx].T) / scale
+            maps = np.moveaxis(np.asarray(hms[r, 0])[..., idx], -1, 0).astype(np.float32)
+            ent[r, cov] = multipeak_entropy(L._sigmoid(maps, np.float32))
+    return out, ({"flip_disagreement": flip, "heatmap_entropy": ent} if doubt else {})
 
 
 def moves(data: TuningData, rows: np.ndarray, xy: np.ndarray, sigmas: np.ndarray) -> tuple[float, float]:

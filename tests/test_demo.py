@@ -95,6 +95,25 @@ def test_bench_queue_runs_on_the_tiny_scenario(demo):
         assert table[(strat, 8)][0] >= table[(strat, 4)][0]
 
 
+def test_bench_queue_tuning_part_runs_on_the_tiny_scenario(demo):
+    """Smoke check of `kinemark bench queue --tuning` at a reduced size: every strategy and the
+    two-round queue go through the tuning with its held-out check, and the table says how many
+    tunings were kept. (At this size the tunings are refused; the figures are the benchmark's.)"""
+    pytest.importorskip("torch")
+    from kinemark.core.bench_queue import STRATEGIES, TWO_ROUNDS, run
+    lines = []
+    table = run(budgets=(8,), seeds=(0,), project_dir=str(demo.project), say=lines.append, tuning=True)
+    text = "\n".join(lines)
+    assert f"{TWO_ROUNDS} (4 combined picks, tuning, then 4 ranked on the model then in use" in text
+    t = table["tuning"]
+    for strat in STRATEGIES + (TWO_ROUNDS,):
+        raw, corr, tuned, in_use, kept, refused = t[strat]
+        assert np.isfinite([raw, corr, tuned, in_use]).all() and 0 <= kept <= 1
+        # the figure in use is the tuned model's when kept, else the correction's
+        assert in_use == pytest.approx(tuned if kept == 1 else corr) or 0 < kept < 1
+    assert np.isfinite(t["pool_ceiling"])
+
+
 def test_bench_queue_draws_another_scenario_only_into_a_new_folder(demo, tmp_path):
     """--scenario-seed never mixes two draws in one folder, nor renders into someone's files."""
     from kinemark.core.bench_queue import run

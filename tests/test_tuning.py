@@ -257,6 +257,34 @@ def test_tuning_learns_a_planted_offset_on_frames_it_did_not_see(planted, tmp_pa
 
 
 @needs_model
+def test_decoded_points_and_doubt_are_what_the_adapter_stored(planted, tmp_path, feature):
+    """With the raw decoder's weights, :func:`tuning.decoded` (torch, on the cached decoder
+    inputs) gives back what pre-fill stored from ONNX Runtime's run of the whole model: the
+    points, the flip disagreement and the heatmap entropy. The decoder inputs are cached in
+    float16, so a point may move on the rare flat heatmap and the entropy differ on the rare
+    channel where a second peak sits at the 10 % threshold: most values must agree closely,
+    every point within 2 px, all entropies correlate."""
+    sess, dec = feature
+    from kinemark.core.metrics import bbox_from_keypoints
+    with _copy(planted, tmp_path) as p:
+        props = [p.store.proposal(f.id, raw=True) for f in p.store.frames()][:24]
+        pairs = [(q, q.keypoints, float(np.prod(bbox_from_keypoints(q.keypoints)[2:])), "A") for q in props]
+        mapping = L.skeleton_mapping(p.skeleton)
+        data = T.collect(p, pairs, sess, dec, mapping)
+    rows = np.arange(len(props))
+    xy, doubt = T.decoded(data, rows, T.heatmaps(dec, dec.weights, data, rows), mapping, _channels(mapping))
+    dp = np.abs(xy - np.stack([q.keypoints[:, :2] for q in props]))       # pixels
+    assert np.quantile(dp, 0.98) < 0.05 and dp.max() < 2.0
+    flip = np.stack([q.signals["flip_disagreement"] for q in props])
+    df = np.abs(doubt["flip_disagreement"] - flip)                       # in pose sizes
+    assert np.quantile(df, 0.98) < 1e-3 and df.max() < 0.05
+    ent = np.stack([q.signals["heatmap_entropy"] for q in props])
+    d = np.abs(doubt["heatmap_entropy"] - ent)
+    assert np.isfinite(d).all() and np.quantile(d, 0.95) < 0.01
+    assert np.corrcoef(ent.ravel(), doubt["heatmap_entropy"].ravel())[0, 1] > 0.999
+
+
+@needs_model
 def test_held_out_participants_never_reach_the_training(planted, tmp_path, feature, monkeypatch):
     _, dec = feature
     with _copy(planted, tmp_path) as p:
