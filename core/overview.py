@@ -51,15 +51,21 @@ class Coverage:
 
 def coverage(project, queued_ids=()) -> Coverage:
     """Labelled poses (a person's annotations), the pool (proposals on frames nobody labelled
-    yet) and the queued part of the pool, in one 2-D projection of the pose space the
+    yet, of the model the ranking reads) and the queued part of the pool, in one 2-D projection of the pose space the
     ranking measures novelty in (:func:`core.ranking.normalise_poses`)."""
-    from .ranking import normalise_poses
+    from .ranking import current_model_hash, normalise_poses
     store = project.store
     labelled = {a.frame_id: a.keypoints for a in store.annotations(LABELLED)}
-    props = {}
+    # the proposal the ranking reads (LiveQueue): the tuned model's in use, else the raw one;
+    # failing both, any the frame has
+    in_use = current_model_hash(project)
+    props, rank = {}, {}
     for p in store.proposals():
-        if p.frame_id not in labelled and (p.frame_id not in props or not p.adapted):
-            props[p.frame_id] = p.keypoints
+        if p.frame_id in labelled:
+            continue
+        r = 2 if p.adapted and p.model_hash == in_use else 1 if not p.adapted else 0
+        if r >= rank.get(p.frame_id, -1):
+            props[p.frame_id], rank[p.frame_id] = p.keypoints, r
     for a in store.annotations([PREFILLED]):
         if a.frame_id not in labelled and a.frame_id not in props:
             props[a.frame_id] = a.keypoints

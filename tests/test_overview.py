@@ -100,3 +100,39 @@ def test_coverage_places_labelled_pool_and_queued_poses(small):
     got = dict(zip(cov.frame_ids.tolist(), cov.group.tolist()))
     assert got == {fids[0]: "labelled", fids[1]: "pool", fids[2]: "queued", fids[3]: "pool"}
     assert cov.xy.shape == (4, 2) and np.isfinite(cov.xy).all() and cov.without_pose == 0
+
+
+def test_coverage_reads_the_proposals_the_ranking_reads(small, monkeypatch):
+    """The pose map shows the pool in the pose space the queue measures novelty in, so with a
+    network tuning in use a frame's pose is the tuned model's proposal (core.ranking.LiveQueue),
+    and the raw one's again when the tuning is no longer in use."""
+    from kinemark.core import ranking
+    from kinemark.core.tuning import META_KEY, Tuning
+    project, fids = small
+    s = project.store
+    for i, fid in enumerate(fids):
+        s.save_proposal(fid, model_id="m", model_hash="h", keypoints=_pose(seed=i), confidence=np.ones(17),
+                        signals={}, score=0.9)
+    t = Tuning("h", {"w": np.ones(2, np.float32)}, {}, active=True)
+    tuned = _pose(dx=7.0, seed=40)
+    s.save_proposal(fids[1], model_id="m", model_hash=t.model_hash(), keypoints=tuned, confidence=np.ones(17),
+                    signals={}, score=0.9, adapted=True)
+    seen = {}
+    real = ranking.normalise_poses
+
+    def spy(kps, skel, **kw):
+        seen["kps"] = np.array(kps)
+        return real(kps, skel, **kw)
+
+    monkeypatch.setattr(ranking, "normalise_poses", spy)
+
+    def pose_of(fid):
+        cov = coverage(project)
+        return seen["kps"][cov.frame_ids.tolist().index(fid)]
+
+    assert np.array_equal(pose_of(fids[1]), _pose(seed=1))        # no tuning stored
+    s.set_meta(META_KEY, t.to_json())
+    assert np.array_equal(pose_of(fids[1]), tuned)
+    assert np.array_equal(pose_of(fids[2]), _pose(seed=2))        # the tuned model did not propose it
+    s.set_meta(META_KEY, Tuning("h", {}, {}, active=False).to_json())
+    assert np.array_equal(pose_of(fids[1]), _pose(seed=1))
