@@ -993,6 +993,16 @@ class Store:
     def proposal_count(self) -> int:
         return self._db.execute("SELECT COUNT(*) FROM proposals").fetchone()[0]
 
+    def drop_tuned_proposals(self, frame_ids, keep_hash: str) -> int:
+        """Delete the tuned-model proposals (adapted) on ``frame_ids`` that are not of
+        ``keep_hash``: those of an earlier network tuning. The raw model's stay. Returns how many."""
+        n = 0
+        with self.tx() as db:
+            for fid in frame_ids:
+                n += db.execute("DELETE FROM proposals WHERE frame_id=? AND adapted=1 AND model_hash<>?",
+                                (int(fid), keep_hash)).rowcount
+        return n
+
     def proposed_frame_ids(self, model_hash: str) -> set[int]:
         return {r[0] for r in self._db.execute("SELECT frame_id FROM proposals WHERE model_hash=?",
                                                 (model_hash,))}

@@ -654,6 +654,7 @@ def tune_project(project, *, user: str | None = None, progress=None, cancel=None
     who = project.user(user)
     project.store.set_meta(META_KEY, t.to_json(), user_id=who.id)
     changed, report = _repropose(project, t, base_hash, progress=progress, cancel=cancel)
+    report += _drop_earlier_tunings(project, t, base_hash)
     s = summary
     figures = (f"from {s['frames']} labelled frames ({s['participants']} participants, {s['folds']} folds): "
                f"on held-out participants mean keypoint similarity {s['heldout_similarity_raw']:.3f} raw -> "
@@ -682,6 +683,20 @@ def why_not(summary: dict, correction_moves: float | None) -> str:
         return (f"the project's correction already leaves {correction_moves:.2f} joints per frame to move "
                 f"on held-out participants, no more than the tuned model's {tuned:.2f}")
     return ""
+
+
+def _drop_earlier_tunings(project, t: Tuning, base_hash: str) -> str:
+    """Delete the proposals of an earlier tuning on the frames still untouched that now hold a
+    proposal of the model in use (the tuned one, or the raw one when no tuning is in use).
+    Where a person has worked, the earlier proposal stays: it is what their labels started
+    from. Returns a note for the message ("" when nothing went)."""
+    from .prefill import _is_untouched
+    store = project.store
+    in_use = t.model_hash() if t.active else base_hash
+    anns = {a.frame_id: a for a in store.annotations()}
+    frames = [fid for fid in store.proposed_frame_ids(in_use) if _is_untouched(anns.get(fid))]
+    n = store.drop_tuned_proposals(frames, in_use)
+    return f"; dropped {n} proposal(s) of an earlier tuning from untouched frames" if n else ""
 
 
 def _check_cancel(cancel):
@@ -717,6 +732,7 @@ def untune(project, *, user: str | None = None):
     who = project.user(user)
     project.store.set_meta(META_KEY, t.to_json(), user_id=who.id)
     changed, extra = _repropose(project, t, base_hash)
+    extra += _drop_earlier_tunings(project, t, base_hash)
     return Changes(annotations=tuple(changed),
                    message=f"stopped using the network tuning; {len(changed)} untouched frame(s) went back to "
                            f"the raw model's proposal{extra}"), t

@@ -27,7 +27,7 @@ import onnx  # noqa: E402
 import onnxruntime as ort  # noqa: E402
 
 from kinemark.core import tuning as T  # noqa: E402
-from kinemark.core.model import ACCEPTED  # noqa: E402
+from kinemark.core.model import ACCEPTED, DRAFTING  # noqa: E402
 from kinemark.core.pose import landmark as L  # noqa: E402
 from kinemark.core.pose.base import session_options  # noqa: E402
 
@@ -337,6 +337,7 @@ def test_a_kept_tuning_pre_fills_untouched_frames_and_never_a_persons_points(pla
         human = {a.frame_id: (a.version, a.keypoints.copy()) for a in p.store.annotations([ACCEPTED])}
         untouched = {a.frame_id: a.keypoints.copy() for a in p.store.annotations() if a.frame_id not in human}
         raw_hash = load_adapter(p, tuned=False).model_hash
+        K0 = p.skeleton.num_keypoints
         ch, t = T.tune_project(p)
         assert t.active and "tuned the model's heatmap layers" in ch.message
         ad = load_adapter(p)
@@ -359,8 +360,18 @@ def test_a_kept_tuning_pre_fills_untouched_frames_and_never_a_persons_points(pla
         ch2, _ = adapt.fit_project(p)
         assert "tuned model" in ch2.message
         assert all("adapted" in p.store.annotation(fid).sources for fid in untouched)
+        # a person starts on a frame the tuned model pre-filled: its tuned proposal is what
+        # they started from, and stays when the tuning goes
+        started = sorted(untouched)[0]
+        del untouched[started]
+        p.store.save_annotation(started, p.store.annotation(started).keypoints, ["human"] * K0,
+                                state=DRAFTING, action="save")
         ch3, _ = T.untune(p)
         assert T.stored_tuning(p) is None and not load_adapter(p).adapted
+        # the earlier tuning's proposals left the untouched frames, and only them
+        assert f"dropped {len(untouched)} proposal(s) of an earlier tuning" in ch3.message
+        assert not any(p.store.proposal(fid).adapted for fid in untouched)
+        assert p.store.proposal(started).model_hash == t.model_hash()
         # back to the raw model's stored proposal, with the project's correction if it kept one
         corr = adapt.load_correction(p, raw_hash)
         K = p.skeleton.num_keypoints
