@@ -92,6 +92,11 @@ def bench_open(n: int = 100_000):
         shutil.rmtree(tmp, ignore_errors=True)
 
 
+def _names(text):
+    """A comma-separated list of names, or None when not given."""
+    return None if not text else tuple(x.strip() for x in str(text).split(",") if x.strip())
+
+
 def run(what: str, args=None):
     for opt in ("frames", "seconds", "cases"):
         v = getattr(args, opt, None)
@@ -115,7 +120,8 @@ def run(what: str, args=None):
             raise KinemarkError(f"--tuning-seeds must be whole numbers separated by commas, not {seeds!r}") from None
         run_queue(project_dir=getattr(args, "project", None) or "sample_project",
                   scenario_seed=getattr(args, "scenario_seed", None),
-                  tuning=bool(getattr(args, "tuning", False)), tuning_seeds=tuning_seeds)
+                  tuning=bool(getattr(args, "tuning", False)), tuning_seeds=tuning_seeds,
+                  tuning_strategies=_names(getattr(args, "tuning_strategies", None)))
     if what in ("team", "all"):
         from .bench_team import run as run_team
         run_team(getattr(args, "db", None), seconds=getattr(args, "seconds", None) or 60.0)

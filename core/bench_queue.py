@@ -29,8 +29,10 @@ from .ranking import (RankingQueue, RankWeights, frame_uncertainty, joint_uncert
                       SIGNALS)
 
 STRATEGIES = ("random", "uniform", "kmeans", "uncertainty", "novelty", "combined")
-# the combined queue in two rounds with a tuning between them (the tuning part of the bench only)
-TWO_ROUNDS = "2 rounds"
+# the combined queue in rounds with a tuning after each but the last (the tuning part of the
+# bench only): name -> number of rounds
+ROUNDS = {"2-round": 2, "4-round": 4}
+TUNING_STRATEGIES = STRATEGIES + tuple(ROUNDS)
 
 
 @dataclass
@@ -155,7 +157,8 @@ def versions() -> str:
 
 
 def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_project", clips_dir=None,
-        say=print, scenario_seed: int | None = None, tuning: bool = False, tuning_seeds=(0,)):
+        say=print, scenario_seed: int | None = None, tuning: bool = False, tuning_seeds=(0,),
+        tuning_strategies=None):
     """``scenario_seed``: draw the invented scenario with this seed (other participants, same
     kinds of clips) into ``project_dir/clips`` when that folder has none, so the figures can be
     checked on a second draw; a folder already holding another draw is refused.
@@ -163,9 +166,16 @@ def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_p
     ``tuning``: also measure network tuning (core.tuning, needs PyTorch) at N=100 (or the largest
     budget) for ``tuning_seeds``, each strategy's picks going through what ``kinemark adapt
     --tune`` does: the held-out check on the labelled participants, then the model in use (the
-    tuned one, else the correction, else the raw model) scored on the held-out participants."""
-    from pathlib import Path
+    tuned one, else the correction, else the raw model) scored on the held-out participants.
+    ``tuning_strategies``: which of TUNING_STRATEGIES to tune on (default all; random and
+    uniform always, the ratios need them); the ones in ROUNDS are the combined queue in rounds
+    with a tuning between them, as a team would label, tune, and label on."""
     from .errors import KinemarkError
+    if tuning_strategies is not None:
+        bad = sorted(set(tuning_strategies) - set(TUNING_STRATEGIES))
+        if bad:
+            raise KinemarkError(f"unknown strategy {', '.join(bad)}: choose from {', '.join(TUNING_STRATEGIES)}")
+    from pathlib import Path
     from .project import Project
     from .store import DB_NAME
     root = Path(project_dir)
@@ -264,11 +274,12 @@ def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_p
         f"on every pool frame (simulated labels, no selection) reaches {pool_fit:.2f}"
         + (", so no choice of frames can meet them with this correction" if pool_fit > need else ""))
     if tuning:
-        table["tuning"] = _tuning_table(root, pool, splits, tuning_seeds, b, sig, say)
+        table["tuning"] = _tuning_table(root, pool, splits, tuning_seeds, b, sig, say,
+                                        tuning_strategies or TUNING_STRATEGIES)
     return table
 
 
-def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
+def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strategies=TUNING_STRATEGIES):
     """Network tuning on each strategy's first ``budget`` picks (see :func:`run`)."""
     from . import tuning as T
     from .adapt import from_crop
@@ -308,8 +319,10 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
     import torch
     say(f"network tuning (torch {torch.__version__}): decoder inputs of {len(td.frame_ids)} frames computed "
         f"in {time.perf_counter() - t0:.0f} s; N={budget}, seeds {list(seeds)}, the same held-out splits")
-    rows = {s: [] for s in STRATEGIES + (TWO_ROUNDS,)}
-    t_fit, pool_tuned, first_kept, done = [], [], [], 0
+    strategies = [s for s in TUNING_STRATEGIES if s in set(strategies) | {"random", "uniform"}]
+    rows = {s: [] for s in strategies}
+    t_fit, pool_tuned, done = [], [], 0
+    interim_kept = {s: [] for s in ROUNDS}
 
     def tuned_on(picks):
         """What ``kinemark adapt --tune`` does with labels of ``picks``: (weights, correction,
@@ -324,21 +337,37 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
         corr_moves = corr.summary.get("heldout_moves_adapted") if corr.active else None
         return w, corr, T.why_not(summary, corr_moves), summary
 
-    def second_round(first, cand, rng, w_first):
-        """The combined queue's next picks after ``first`` are labelled, ranked as LiveQueue
-        ranks them: on the tuned model's proposals when the first tuning is in use
-        (``w_first``), else on the raw ones; novelty against the labels of ``first``."""
-        rest = np.setdiff1d(cand, first)
-        doubt = {n: pool.sig[n][rest] for n in pool.sig}
+    def next_round(got, cand, n, rng, w_in_use):
+        """The combined queue's next ``n`` picks once ``got`` are labelled, ranked as LiveQueue
+        ranks them: on the tuned model's proposals when a tuning is in use (``w_in_use``), else
+        on the raw ones; novelty against the labels of ``got``."""
+        rest = np.setdiff1d(cand, got)
+        doubt = {k: pool.sig[k][rest] for k in pool.sig}
         kps = pool.kps[rest]
-        if w_first is not None:
-            xy, tuned = T.decoded(td, rest, T.heatmaps(dec, w_first, td, rest), mapping, chans)
+        if w_in_use is not None:
+            xy, tuned = T.decoded(td, rest, T.heatmaps(dec, w_in_use, td, rest), mapping, chans)
             doubt.update(tuned)       # visibility, presence and the passes' points are untouched
             kps = np.concatenate([xy, kps[:, :, 2:]], axis=2)
         unc = frame_uncertainty(joint_uncertainty(doubt, pool.conf[rest]))
         q = RankingQueue(pose_features(kps, skel), unc, pool.media[rest], pool.index[rest],
-                         RankWeights(seed=int(rng.integers(1 << 30))), pose_features(td.labels[first], skel))
-        return rest[[p[0] for p in q.select(budget - len(first))]]
+                         RankWeights(seed=int(rng.integers(1 << 30))), pose_features(td.labels[got], skel))
+        return rest[[p[0] for p in q.select(n)]]
+
+    def in_rounds(strat, cand, rng):
+        """The picks of the combined queue in ROUNDS[strat] rounds: the first from the raw
+        model's proposals, then after each round what ``kinemark adapt --tune`` does with the
+        labels so far, and the next round ranked on the model then in use (the tuned one if
+        its held-out check kept it, else the raw one)."""
+        sizes = np.diff(np.linspace(0, budget, ROUNDS[strat] + 1).round().astype(int))
+        got = np.sort(select("combined", pool, cand, int(sizes[0]), rng))
+        for n in sizes[1:]:
+            if len(got) < T.MIN_FRAMES or len(set(pool.group[got].tolist())) < T.MIN_PARTICIPANTS:
+                w, why = None, "too few labels to tune on"      # kinemark adapt --tune refuses
+            else:
+                w, _, why, _ = tuned_on(got)
+            interim_kept[strat].append(not why)
+            got = np.sort(np.concatenate([got, next_round(got, cand, int(n), rng, None if why else w)]))
+        return got
 
     for held in splits:
         test = np.isin(pool.group, held)
@@ -349,19 +378,16 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
         xy = T.points(exact, tpos, T.heatmaps(dec, w_pool, exact, tpos), mapping, chans)
         pool_tuned.append(T.moves(exact, tpos, xy, sig)[1])
         for seed in seeds:
-            for strat in STRATEGIES + (TWO_ROUNDS,):
-                rng = np.random.default_rng([seed, budget, (STRATEGIES + (TWO_ROUNDS,)).index(strat)])
+            for strat in strategies:
+                rng = np.random.default_rng([seed, budget, TUNING_STRATEGIES.index(strat)])
                 t1 = time.perf_counter()
-                if strat == TWO_ROUNDS:
-                    first = np.sort(select("combined", pool, cand, budget // 2, rng))
-                    w1, _, why1, _ = tuned_on(first)
-                    first_kept.append(not why1)
-                    picks = np.sort(np.concatenate([first, second_round(first, cand, rng, None if why1 else w1)]))
+                if strat in ROUNDS:
+                    picks = in_rounds(strat, cand, rng)
                 else:
                     picks = np.sort(select(strat, pool, cand, budget, rng))
                 w, corr, why, summary = tuned_on(picks)
                 done += 1
-                if strat != TWO_ROUNDS:
+                if strat not in ROUNDS:
                     t_fit.append(time.perf_counter() - t1)
                 xy = T.points(exact, tpos, T.heatmaps(dec, w, exact, tpos), mapping, chans)
                 _, tuned_moves = T.moves(exact, tpos, xy, sig)
@@ -376,7 +402,7 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
     say(f"{'strategy':<12}| raw   correction  tuned  in use  (tuning kept)   [joints to move per frame, "
         f"held-out participants, N={budget}]")
     out = {}
-    for strat in STRATEGIES + (TWO_ROUNDS,):
+    for strat in strategies:
         r = np.array(rows[strat], float)
         out[strat] = r.mean(axis=0)
         why = [f"{int((r[:, 5] == k).sum())} as no better than {what}" for k, what in
@@ -384,19 +410,22 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say):
         say(f"{strat:<12}| {r[:, 0].mean():4.2f}  {r[:, 1].mean():6.2f}  {r[:, 2].mean():9.2f}  "
             f"{r[:, 3].mean():5.2f}   {int(r[:, 4].sum())} of {len(r)}"
             + (f" (refused {', '.join(why)}, by the check on the labelled participants)" if why else ""))
-    rnd, uni, comb = out["random"], out["uniform"], out["combined"]
-    say(f"network tuning at N={budget}: combined in-use moves / random = {comb[3] / rnd[3]:.2f}, / uniform = "
-        f"{comb[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {comb[3] / comb[0]:.2f} (goal <= 0.5); "
-        f"a tuning with its held-out check took {np.median(t_fit):.1f} s (median)")
-    two = out[TWO_ROUNDS]
-    say(f"network tuning at N={budget}, {TWO_ROUNDS} ({budget // 2} combined picks, tuning, then "
-        f"{budget - budget // 2} ranked on the model then in use; the first tuning was kept in "
-        f"{sum(first_kept)} of {len(first_kept)}): in-use moves / random = {two[3] / rnd[3]:.2f}, "
-        f"/ uniform = {two[3] / uni[3]:.2f}")
+    rnd, uni = out["random"], out["uniform"]
+    if "combined" in out:
+        comb = out["combined"]
+        say(f"network tuning at N={budget}: combined in-use moves / random = {comb[3] / rnd[3]:.2f}, / uniform = "
+            f"{comb[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {comb[3] / comb[0]:.2f} (goal <= 0.5)")
+    for strat in (s for s in strategies if s in ROUNDS):
+        r, k, kept = out[strat], ROUNDS[strat], interim_kept[strat]
+        say(f"network tuning at N={budget}, {strat} (the combined queue in {k} rounds of {budget // k}, "
+            f"ranked on the model in use after the tuning that follows each round; the tunings between "
+            f"rounds were kept in {sum(kept)} of {len(kept)}): in-use moves / random = {r[3] / rnd[3]:.2f}, "
+            f"/ uniform = {r[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {r[3] / r[0]:.2f}")
+    say(f"network tuning: a tuning with its held-out check took {np.median(t_fit):.1f} s (median)")
     need = 0.8 * min(rnd[3], uni[3])
     ceiling = float(np.mean(pool_tuned))
     say(f"network tuning at N={budget}: the 0.8x goals need combined in-use moves <= {need:.2f}; tuning on "
         f"every frame of the labelling pool (simulated labels, no selection, no held-out check) reaches "
-        f"{ceiling:.2f} ({ceiling / comb[0]:.2f}x raw)")
+        f"{ceiling:.2f} ({ceiling / rnd[0]:.2f}x raw)")
     out["pool_ceiling"] = ceiling
     return out

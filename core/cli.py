@@ -438,6 +438,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="queue: also measure network tuning (adapt --tune; needs PyTorch) at N=100")
     s.add_argument("--tuning-seeds", default=None, metavar="LIST",
                    help="queue --tuning: selection seeds, e.g. 0,1 (default 0; each seed adds 18 tunings)")
+    s.add_argument("--tuning-strategies", default=None, metavar="LIST",
+                   help="queue --tuning: which strategies to tune on, e.g. combined,4-round (default all; "
+                        "random and uniform always, the ratios need them)")
     s.add_argument("--cases", type=int, default=None, help="crash: kills (default 50); fuzz: COCO files (10000)")
     s.set_defaults(fn=cmd_bench)
     return ap

@@ -96,17 +96,24 @@ def test_bench_queue_runs_on_the_tiny_scenario(demo):
 
 
 def test_bench_queue_tuning_part_runs_on_the_tiny_scenario(demo):
-    """Smoke check of `kinemark bench queue --tuning` at a reduced size: every strategy and the
-    two-round queue go through the tuning with its held-out check, and the table says how many
-    tunings were kept. (At this size the tunings are refused; the figures are the benchmark's.)"""
+    """Smoke check of `kinemark bench queue --tuning` at a reduced size: the chosen strategies
+    (with random and uniform, which the ratios need) and the combined queue in rounds go through
+    the tuning with its held-out check, and the table says how many tunings were kept. (At this
+    size the tunings are refused; the figures are the benchmark's.)"""
     pytest.importorskip("torch")
-    from kinemark.core.bench_queue import STRATEGIES, TWO_ROUNDS, run
+    from kinemark.core.bench_queue import ROUNDS, run
+    from kinemark.core.errors import KinemarkError
+    with pytest.raises(KinemarkError, match="unknown strategy best"):
+        run(budgets=(8,), seeds=(0,), project_dir=str(demo.project), say=lambda *a: None, tuning=True,
+            tuning_strategies=("combined", "best"))
     lines = []
-    table = run(budgets=(8,), seeds=(0,), project_dir=str(demo.project), say=lines.append, tuning=True)
+    table = run(budgets=(8,), seeds=(0,), project_dir=str(demo.project), say=lines.append, tuning=True,
+                tuning_strategies=tuple(ROUNDS))
     text = "\n".join(lines)
-    assert f"{TWO_ROUNDS} (4 combined picks, tuning, then 4 ranked on the model then in use" in text
+    assert "4-round (the combined queue in 4 rounds of 2, ranked on the model in use" in text
     t = table["tuning"]
-    for strat in STRATEGIES + (TWO_ROUNDS,):
+    assert set(t) == {"random", "uniform", *ROUNDS, "pool_ceiling"}
+    for strat in ("random", "uniform", *ROUNDS):
         raw, corr, tuned, in_use, kept, refused = t[strat]
         assert np.isfinite([raw, corr, tuned, in_use]).all() and 0 <= kept <= 1
         # the figure in use is the tuned model's when kept, else the correction's
