@@ -741,6 +741,9 @@ def test_every_store_write_leaves_the_event_log_a_prefix(tmp_path, monkeypatch):
     step(s.address_review_notes, a.id, user_id=ann.id)
     step(s.save_proposal, fids[0], model_id="m", model_hash="h", keypoints=k, confidence=np.ones(17),
          signals={}, score=0.5)
+    step(s.save_proposal, fids[0], model_id="m+tuned", model_hash="t1", keypoints=k, confidence=np.ones(17),
+         signals={}, score=0.5, adapted=True)
+    assert step(s.drop_tuned_proposals, [fids[0]], "t2") == 1
     step(s.set_agreement_frames, [fids[0]], seed=1, share=0.1, user_id=1)
     step(s.save_second_label, fids[0], k, user_id=1)
     step(s.log_event, "export", "bundle", None, None, {"n": 1})
