@@ -51,8 +51,9 @@ class Coverage:
 
 def coverage(project, queued_ids=()) -> Coverage:
     """Labelled poses (a person's annotations), the pool (proposals on frames nobody labelled
-    yet, of the model the ranking reads) and the queued part of the pool, in one 2-D projection of the pose space the
-    ranking measures novelty in (:func:`core.ranking.normalise_poses`)."""
+    yet, of the model the ranking reads) and the queued part of the pool, in one 2-D
+    projection of the pose space the ranking measures novelty in
+    (:func:`core.ranking.normalise_poses`)."""
     from .ranking import current_model_hash, normalise_poses
     store = project.store
     labelled = {a.frame_id: a.keypoints for a in store.annotations(LABELLED)}

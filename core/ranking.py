@@ -3,8 +3,8 @@
 Three ingredients, per candidate frame:
 
 * **uncertainty** of the proposal of the model in use (the tuned model's once
-  a network tuning is in use, else the raw model's), from the per-joint signals stored
-  with it (flip disagreement, multi-peak heatmap entropy, first/second pass
+  a network tuning is in use, else the raw model's), from the per-joint
+  signals stored with it (flip disagreement, multi-peak heatmap entropy, first/second pass
   disagreement, and one minus the model's own confidence). Each signal is
   turned into its percentile rank over the candidate pool (so signals with
   different units combine without hand-set scales) and averaged per joint;
@@ -424,7 +424,6 @@ class LiveQueue:
                 tuned[p.frame_id] = p     # the tuned model in use proposed it
         props.update(tuned)
         self.props = props
-        self.tuned = len(tuned)
         self.labelled = set(labelled)
         self.pool = sorted(fid for fid in props if fid not in labelled and fid in self.frames)
         self.pos = {fid: i for i, fid in enumerate(self.pool)}
