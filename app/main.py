@@ -169,6 +169,10 @@ class MainWindow(QMainWindow):
         self.project = None
         self.user_name: str | None = None
         self._live = None          # core.ranking.LiveQueue behind Up next, once ranked
+        # the suggestion to tune (core.tuning.suggestion): the label count last checked at, and
+        # whether a check is running / another is due when it ends
+        self._hint_at: int | None = None
+        self._hint_busy = self._hint_again = False
         self.user_role: str | None = None
         self.undo = QUndoStack(self)
         self._goes = 0                 # frame changes so far (see _start_at_queue_top)
@@ -615,6 +619,7 @@ class MainWindow(QMainWindow):
         self.settings.sync()
         self.frames.reset()
         self._live = None
+        self._hint_at, self._hint_again = None, False
         self.project.close()
         self.project = None
         self.frame_id = None
@@ -842,6 +847,36 @@ class MainWindow(QMainWindow):
         from ..core import ops
         counts = self.project.store.state_counts()
         self.queue.set_progress(counts.get(ACCEPTED, 0), counts.get(IN_REVIEW, 0), ops.target(self.project))
+        self._check_tuning_hint(counts.get(ACCEPTED, 0) + counts.get(IN_REVIEW, 0))
+
+    def _check_tuning_hint(self, labels: int | None = None):
+        """Ask core, in the background, whether to suggest tuning the model now (Up next shows
+        it); again only when the number of accepted and in-review frames has changed, or after
+        a re-rank (``labels`` None), e.g. once a tuning has finished."""
+        if self.project is None or (labels is not None and labels == self._hint_at):
+            return
+        if self._hint_busy:
+            self._hint_again = True
+            return
+        self._hint_at, self._hint_busy = labels, True
+        root = self.project.root
+
+        def work(project, progress, cancel):
+            from ..core import ops
+            return ops.tuning_suggestion(project)
+
+        def ended(text):
+            self._hint_busy = False
+            if self.project is not None and self.project.root == root and text is not None:
+                how = f"Assist ▸ Tune the model on accepted labels ({self.keys.text('batch.tune')})"
+                self.queue.set_hint(f"{text[0].upper()}{text[1:]}. {how}." if text else "")
+            if self._hint_again and self.project is not None:
+                self._hint_again = False
+                self._hint_at = None
+                self._update_progress()
+
+        self.background.run("Checking whether to suggest tuning", work, root=root, on_done=ended,
+                            on_error=lambda exc: ended(None), quiet=True)
 
     # ---- editing ---------------------------------------------------------------------------------
 
@@ -1453,6 +1488,8 @@ class MainWindow(QMainWindow):
                 live = None
             self._live = live
             self._show_queue(entries, note)
+            self._hint_at = None             # e.g. a tuning has just finished
+            self._update_progress()
             if say:
                 shown = self.queue.entries
                 top = (f"; first: {self.describe_short(self.frame_by_id[shown[0].frame_id])}"

@@ -98,6 +98,8 @@ QTabBar::tab {{ background: {PANEL}; color: {MUTED}; padding: 6px 16px; border: 
 QTabBar::tab:selected {{ color: {TEXT}; border-bottom: 2px solid {SKY_BLUE}; }}
 QLabel#heading {{ color: {TEXT}; font-weight: 600; }}
 QLabel#muted, QLabel#hint {{ color: {MUTED}; }}
+QLabel#tuneHint {{ color: {TEXT}; background: {RAISED}; border-left: 3px solid {BLUISH_GREEN};
+                  padding: 4px 6px; }}
 QLabel#frameline {{ color: {TEXT}; padding: 4px 8px; }}
 QTableWidget, QListWidget {{ background: {BASE}; border: none; gridline-color: {PANEL};
                             selection-background-color: {RAISED}; selection-color: {TEXT}; }}

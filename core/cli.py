@@ -220,11 +220,14 @@ def cmd_rank(a):
                 print(f"note: {note}")
         entries = ops.rank(p, a.batch)
         names = {m.id: m.display_name for m in p.store.all_media()}
+        hint = ops.tuning_suggestion(p)
     if not entries:
         print("the queue is empty: every frame is labelled")
     for n, e in enumerate(entries, 1):
         print(f"{n:>4}. frame {e.frame_id:<6} {names.get(e.media_id, e.media_id)} #{e.frame_index:<6} "
               f"score {e.score:.2f}  {'; '.join(e.reasons)}")
+    if hint:
+        print(f"note: {hint} (kinemark adapt {a.dir} --tune)")
 
 
 def cmd_adapt(a):

@@ -512,6 +512,12 @@ def tune(project: Project, *, user: str | None = None, progress=None, cancel=Non
     return tune_project(project, user=user, progress=progress, cancel=cancel)
 
 
+def tuning_suggestion(project: Project) -> str:
+    """A plain-words suggestion to tune the model now, or "" (see :func:`.tuning.suggestion`)."""
+    from .tuning import suggestion
+    return suggestion(project)
+
+
 def untune(project: Project, *, user: str | None = None):
     """Stop using the project's tuned model. Returns (Changes, Tuning or None)."""
     from .tuning import untune as _untune

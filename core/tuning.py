@@ -63,6 +63,13 @@ TARGET_SIGMA = 1.5          # heatmap cells
 MAX_FOLDS = 3
 MIN_FRAMES = 8
 MIN_PARTICIPANTS = 2
+# labelling in rounds: once this many labels have come in since the last tuning (or with none
+# yet), the queue suggests tuning, so it ranks the frames left on the tuned model's doubts.
+# A project choice from the benchmark (DEVELOPERS.md, "bench queue --tuning"): 100 labels in
+# two rounds of 50 with a tuning between left fewer joints to move on held-out participants
+# than the same queue's 100 tuned on once, in every run; four rounds of 25 did not
+SUGGEST_AFTER = 50
+CLEARED = "cleared by a person"       # the stored reason after untune
 _OPS = {"Conv", "Clip", "Resize", "Add", "Transpose"}
 _TORCH_HINT = ("network tuning needs PyTorch, which is not installed: pip install 'kinemark[tuning]' "
                "(on Linux, the CPU build: pip install torch --index-url https://download.pytorch.org/whl/cpu)")
@@ -673,6 +680,40 @@ def tune_project(project, *, user: str | None = None, progress=None, cancel=None
     return Changes(annotations=tuple(changed), message=msg, details={"summary": summary}), t
 
 
+def suggestion(project) -> str:
+    """A plain-words suggestion to tune now, or "" (PyTorch missing, another pose model, too
+    few labels to tune on, fewer than SUGGEST_AFTER new since the last tuning, the last
+    decision a person's to stop using it, or a damaged stored tuning, which pre-fill reports).
+    Counts the labels tuning would use, those :func:`tune_project` counts."""
+    import importlib.util
+    if importlib.util.find_spec("torch") is None:
+        return ""
+    seen = 0
+    text = project.store.get_meta(META_KEY)
+    if text:
+        try:
+            summary = json.loads(text).get("summary") or {}
+            if summary.get("reason") == CLEARED:
+                return ""
+            seen = int(summary.get("frames", 0))
+        except (ValueError, TypeError, AttributeError):
+            return ""
+    try:
+        _, base_hash = _base_model_bytes(project)
+    except (KinemarkError, OSError):
+        return ""
+    pairs = labelled_pairs(project, base_hash)
+    if len(pairs) < MIN_FRAMES or len({g for *_, g in pairs}) < MIN_PARTICIPANTS:
+        return ""
+    new = len(pairs) - seen
+    if new < SUGGEST_AFTER:
+        return ""
+    since = (f"{new} labels have come in since the model was last tuned, on {seen}" if seen else
+             f"{len(pairs)} labels are ready and the model has not been tuned yet")
+    return (f"{since}: tuning now lets the queue rank the frames left on the tuned model's doubts "
+            f"(its check on held-out participants decides whether it is used)")
+
+
 def why_not(summary: dict, correction_moves: float | None) -> str:
     """Why a tuning with held-out figures ``summary`` is not to be used ("" when it is): it must
     leave fewer joints to move than the raw model, and fewer than the project's correction
@@ -730,7 +771,7 @@ def untune(project, *, user: str | None = None):
     if not text:
         return Changes(message="this project has no network tuning; nothing was changed"), None
     _, base_hash = _base_model_bytes(project)
-    t = Tuning(base_hash, {}, {"reason": "cleared by a person"}, active=False)
+    t = Tuning(base_hash, {}, {"reason": CLEARED}, active=False)
     who = project.user(user)
     project.store.set_meta(META_KEY, t.to_json(), user_id=who.id)
     changed, extra = _repropose(project, t, base_hash)

@@ -383,6 +383,55 @@ def test_a_kept_tuning_pre_fills_untouched_frames_and_never_a_persons_points(pla
             assert np.allclose(np.where(exp[:, 2:3] > 0, exp, 0), p.store.annotation(fid).keypoints)
 
 
+@needs_model
+def test_the_queue_suggests_tuning_once_enough_labels_came_in(planted, tmp_path, monkeypatch, capsys):
+    """When to suggest tuning: the count is of the labels tune_project would train on, and runs
+    from the labels the stored tuning saw (kept or refused); not after a person stopped the
+    tuning, nor without PyTorch, nor for another pose model, nor on a damaged stored tuning.
+    (A project rule, checked against its own definition: SUGGEST_AFTER is set per test here.)"""
+    from kinemark.core.cli import main
+    with _copy(planted, tmp_path) as p:
+        _, base = T._base_model_bytes(p)
+        n = len(T.labelled_pairs(p, base))
+        assert n >= T.MIN_FRAMES
+        monkeypatch.setattr(T, "SUGGEST_AFTER", n - 2)
+        assert f"{n} labels are ready and the model has not been tuned yet" in T.suggestion(p)
+
+        def stored(frames, reason=None, active=False):
+            s = {"frames": frames, **({"reason": reason} if reason else {})}
+            p.store.set_meta(T.META_KEY, T.Tuning(base, {}, s, active=active).to_json())
+
+        stored(3, "no better than the raw model")           # refused, but it saw 3 labels
+        assert T.suggestion(p) == ""                          # n - 3 new: one short
+        stored(2)
+        assert f"{n - 2} labels have come in since the model was last tuned, on 2" in T.suggestion(p)
+        stored(0, T.CLEARED)
+        assert T.suggestion(p) == ""
+        p.store.set_meta(T.META_KEY, "{not json")
+        assert T.suggestion(p) == ""
+        p.store.set_meta(T.META_KEY, "")
+        # the labels tuning would use: a frame whose label lost its person's points drops out
+        a = next(a for a in p.store.annotations([ACCEPTED]))
+        p.store.save_annotation(a.frame_id, a.keypoints, ["model"] * len(a.sources), state=ACCEPTED,
+                                action="test")
+        monkeypatch.setattr(T, "SUGGEST_AFTER", n)
+        assert T.suggestion(p) == ""
+        monkeypatch.setattr(T, "SUGGEST_AFTER", n - 1)
+        assert T.suggestion(p) != ""
+        root = p.root
+    # the command line prints it after the queue
+    assert main(["rank", str(root), "--batch", "2"]) == 0
+    assert "--tune)" in capsys.readouterr().out.splitlines()[-1]
+    with _copy(planted, tmp_path / "again") as p:
+        monkeypatch.setattr(T, "SUGGEST_AFTER", 1)
+        assert T.suggestion(p) != ""
+        monkeypatch.setitem(sys.modules, "torch", None)
+        assert T.suggestion(p) == ""
+        monkeypatch.delitem(sys.modules, "torch")
+        p.store.set_meta("pose_model", "some-other-model.onnx")
+        assert T.suggestion(p) == ""
+
+
 def test_the_command_line_refuses_tune_with_untune(project, capsys):
     from kinemark.core.cli import main
     rc = main(["adapt", str(project.root), "--tune", "--untune"])

@@ -82,6 +82,12 @@ class QueuePanel(QWidget):
         self.note.setWordWrap(True)
         self.note.setVisible(False)
         lay.addWidget(self.note)
+        # when to tune the model (core.tuning.suggestion), apart from the ranking's own note
+        self.hint = QLabel("")
+        self.hint.setObjectName("tuneHint")
+        self.hint.setWordWrap(True)
+        self.hint.setVisible(False)
+        lay.addWidget(self.hint)
         self.list = entry_list(self.chosen)
         lay.addWidget(self.list, 1)
         self.entries: list = []
@@ -115,12 +121,18 @@ class QueuePanel(QWidget):
             self.note.setText((note + "\n" if note else "") + empty)
             self.note.setVisible(True)
 
+    def set_hint(self, text: str):
+        """Show (or, with "", hide) the suggestion to tune the model."""
+        self.hint.setText(text)
+        self.hint.setVisible(bool(text))
+
     def clear(self):
         self.entries = []
         self._followers = None
         self.list.clear()
         self._items.clear()
         self.note.setVisible(False)
+        self.set_hint("")
 
     def mark(self, states: dict):
         """Dim the entries whose frame is handed in or accepted."""

@@ -52,3 +52,31 @@ def test_tune_runs_the_core_operation_and_reloads_the_model(qtbot, clip_project,
     assert any("tuned the model's heatmap layers (stand-in)" in t for t in texts)
     assert loads, "the window loads the model again after tuning"
     w.close()
+
+
+def test_up_next_shows_the_suggestion_to_tune_and_drops_it_after_tuning(qtbot, clip_project, settings,  # noqa: F811
+                                                                          model, monkeypatch):
+    """The suggestion core gives (core.tuning.suggestion, stood in for here) shows in Up next
+    with the command and its key; after a tuning the window asks again and it goes."""
+    from kinemark.core import ops, tuning
+    import kinemark.core.pose as pose
+    monkeypatch.setattr(tuning, "torch_available", lambda: True)
+    monkeypatch.setattr(pose, "load_adapter", lambda project, **kw: model)
+    say = ["60 labels are ready and the model has not been tuned yet: tuning now lets the queue rank "
+           "the frames left on the tuned model's doubts"]
+    asked = []
+    monkeypatch.setattr(ops, "tuning_suggestion", lambda project: (asked.append(1), say[0])[1])
+    w = open_window(qtbot, clip_project.root, settings)
+    _wait(qtbot, w)
+    qtbot.waitUntil(lambda: w.queue.hint.isVisibleTo(w), timeout=5000)
+    text = w.queue.hint.text()
+    assert text.startswith("60 labels are ready") and "Tune the model on accepted labels (Ctrl+Shift+U)" in text
+    say[0] = ""
+    monkeypatch.setattr(ops, "tune", lambda project, **kw: (Changes(message="tuned (stand-in)"), None))
+    monkeypatch.setattr(ops, "propose", lambda project, **kw: None)
+    n = len(asked)
+    w.actions["batch.tune"].trigger()
+    _wait(qtbot, w)
+    qtbot.waitUntil(lambda: len(asked) > n and not w._hint_busy, timeout=5000)
+    assert not w.queue.hint.isVisibleTo(w)
+    w.close()
