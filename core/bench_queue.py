@@ -29,9 +29,15 @@ from .ranking import (RankingQueue, RankWeights, frame_uncertainty, joint_uncert
                       SIGNALS)
 
 STRATEGIES = ("random", "uniform", "kmeans", "uncertainty", "novelty", "combined")
-# the combined queue in rounds with a tuning after each but the last (the tuning part of the
-# bench only): name -> number of rounds
-ROUNDS = {"2-round": 2, "4-round": 4}
+# labelling in rounds with a tuning after each but the last, later rounds from the combined
+# queue ranked on the model then in use (the tuning part of the bench only):
+# name -> (strategy of the first round, number of rounds). "uniform-first" starts from frames
+# spread evenly in time, which suit a very small budget better than doubt or novelty do (the
+# cold-start finding of Hacohen, Dekel & Weinshall, ICML 2022, "Active Learning on a Budget:
+# Opposite Strategies Suit High and Low Budgets").
+# (the order keeps each strategy's random stream, seeded by its position, as it was)
+ROUNDS = {"2-round": ("combined", 2), "4-round": ("combined", 4), "3-round": ("combined", 3),
+          "uniform-first": ("uniform", 2), "typical-first": ("typical", 2)}
 TUNING_STRATEGIES = STRATEGIES + tuple(ROUNDS)
 
 
@@ -129,11 +135,42 @@ def select(strategy: str, pool: Pool, cand: np.ndarray, n: int, rng) -> np.ndarr
                 d = ((data[members] - centres[k]) ** 2).sum(1)
                 picks.append(cand[members[np.argmin(d)]])
         return np.array(picks)
+    if strategy == "typical":      # first rounds in ROUNDS only
+        return cand[typical_picks(pool.feats[cand], n, rng)]
     weights = {"uncertainty": RankWeights(novelty=0.0, same_clip_decay=0.0, dedup_window=-1),
                "novelty": RankWeights(uncertainty=0.0, same_clip_decay=0.0),
                "combined": RankWeights(seed=int(rng.integers(1 << 30)))}[strategy]
     q = RankingQueue(pool.feats[cand], pool.unc[cand], pool.media[cand], pool.index[cand], weights)
     return cand[[p[0] for p in q.select(n)]]
+
+
+def typical_picks(feats: np.ndarray, n: int, rng, k: int = 20) -> np.ndarray:
+    """The most typical pose of each of ``n`` k-means clusters (OpenCV's k-means++ seeding),
+    largest cluster first: TypiClust of Hacohen, Dekel & Weinshall, "Active Learning on a
+    Budget: Opposite Strategies Suit High and Low Budgets", ICML 2022, with no labels yet.
+    Typicality is the inverse mean distance to a frame's ``k`` nearest neighbours in its
+    cluster (the paper's k = 20). Positions into ``feats``."""
+    data = np.ascontiguousarray(feats, np.float32)
+    n = min(n, len(data))
+    crit = (cv2.TERM_CRITERIA_EPS + cv2.TERM_CRITERIA_MAX_ITER, 30, 1e-3)
+    cv2.setRNGSeed(int(rng.integers(1 << 30)))
+    _, labels, _ = cv2.kmeans(data, n, None, crit, 1, cv2.KMEANS_PP_CENTERS)
+    labels = labels.ravel()
+    sizes = np.bincount(labels, minlength=n)
+    picks = []
+    for c in np.argsort(-sizes, kind="stable"):
+        members = np.flatnonzero(labels == c)
+        if not len(members):
+            continue
+        x = data[members].astype(np.float64)
+        d = np.sqrt(np.maximum(((x[:, None, :] - x[None, :, :]) ** 2).sum(-1), 0))
+        kk = min(k, len(members) - 1)
+        if kk == 0:
+            picks.append(members[0])
+            continue
+        mean_nn = np.sort(d, axis=1)[:, 1:kk + 1].mean(axis=1)
+        picks.append(members[int(np.argmin(mean_nn))])     # the highest typicality 1 / mean_nn
+    return np.array(picks, int)
 
 
 def _subset(pool: Pool, pos, residual) -> Samples:
@@ -354,12 +391,13 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
         return rest[[p[0] for p in q.select(n)]]
 
     def in_rounds(strat, cand, rng):
-        """The picks of the combined queue in ROUNDS[strat] rounds: the first from the raw
-        model's proposals, then after each round what ``kinemark adapt --tune`` does with the
-        labels so far, and the next round ranked on the model then in use (the tuned one if
-        its held-out check kept it, else the raw one)."""
-        sizes = np.diff(np.linspace(0, budget, ROUNDS[strat] + 1).round().astype(int))
-        got = np.sort(select("combined", pool, cand, int(sizes[0]), rng))
+        """The picks of ROUNDS[strat]: the first round by its strategy (on the raw model's
+        proposals), then after each round what ``kinemark adapt --tune`` does with the labels
+        so far, and the next round from the combined queue ranked on the model then in use
+        (the tuned one if its held-out check kept it, else the raw one)."""
+        first, k = ROUNDS[strat]
+        sizes = np.diff(np.linspace(0, budget, k + 1).round().astype(int))
+        got = np.sort(select(first, pool, cand, int(sizes[0]), rng))
         for n in sizes[1:]:
             if len(got) < T.MIN_FRAMES or len(set(pool.group[got].tolist())) < T.MIN_PARTICIPANTS:
                 w, why = None, "too few labels to tune on"      # kinemark adapt --tune refuses
@@ -416,8 +454,12 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
         say(f"network tuning at N={budget}: combined in-use moves / random = {comb[3] / rnd[3]:.2f}, / uniform = "
             f"{comb[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {comb[3] / comb[0]:.2f} (goal <= 0.5)")
     for strat in (s for s in strategies if s in ROUNDS):
-        r, k, kept = out[strat], ROUNDS[strat], interim_kept[strat]
-        say(f"network tuning at N={budget}, {strat} (the combined queue in {k} rounds of {budget // k}, "
+        r, (first, k), kept = out[strat], ROUNDS[strat], interim_kept[strat]
+        size = f"{'about ' if budget % k else ''}{budget // k}"
+        how = (f"the combined queue in {k} rounds of {size}" if first == "combined" else
+               f"{size} {first} picks, then the combined queue in {k - 1} round{'s' * (k > 2)} "
+               f"of {size}")
+        say(f"network tuning at N={budget}, {strat} ({how}, "
             f"ranked on the model in use after the tuning that follows each round; the tunings between "
             f"rounds were kept in {sum(kept)} of {len(kept)}): in-use moves / random = {r[3] / rnd[3]:.2f}, "
             f"/ uniform = {r[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {r[3] / r[0]:.2f}")

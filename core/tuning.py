@@ -67,7 +67,7 @@ MIN_PARTICIPANTS = 2
 # yet), the queue suggests tuning, so it ranks the frames left on the tuned model's doubts.
 # A project choice from the benchmark (DEVELOPERS.md, "bench queue --tuning"): 100 labels in
 # two rounds of 50 with a tuning between left fewer joints to move on held-out participants
-# than the same queue's 100 tuned on once, in every run; four rounds of 25 did not
+# than the same queue's 100 tuned on once, in every run; four rounds of 25 or three of 33 did not
 SUGGEST_AFTER = 50
 CLEARED = "cleared by a person"       # the stored reason after untune
 _OPS = {"Conv", "Clip", "Resize", "Add", "Transpose"}

@@ -111,6 +111,7 @@ def test_bench_queue_tuning_part_runs_on_the_tiny_scenario(demo):
                 tuning_strategies=tuple(ROUNDS))
     text = "\n".join(lines)
     assert "4-round (the combined queue in 4 rounds of 2, ranked on the model in use" in text
+    assert "typical-first (4 typical picks, then the combined queue in 1 round of 4," in text
     t = table["tuning"]
     assert set(t) == {"random", "uniform", *ROUNDS, "pool_ceiling"}
     for strat in ("random", "uniform", *ROUNDS):
@@ -119,6 +120,31 @@ def test_bench_queue_tuning_part_runs_on_the_tiny_scenario(demo):
         # the figure in use is the tuned model's when kept, else the correction's
         assert in_use == pytest.approx(tuned if kept == 1 else corr) or 0 < kept < 1
     assert np.isfinite(t["pool_ceiling"])
+
+
+def test_typical_first_round_picks_the_most_typical_pose_of_each_cluster():
+    """The bench's "typical-first" round (TypiClust, Hacohen, Dekel & Weinshall, ICML 2022):
+    typicality is the inverse of the mean distance to a point's K nearest neighbours, and the
+    pick per cluster is its most typical member, largest cluster first (the paper's definition,
+    checked here by brute force). On four well-separated blobs OpenCV's k-means finds the blobs
+    themselves, so the picks are known without trusting the clustering."""
+    from kinemark.core.bench_queue import typical_picks
+    rng = np.random.default_rng(5)
+    sizes, centres = (30, 20, 12, 6), np.array([[0, 0, 0], [50, 0, 0], [0, 50, 0], [0, 0, 50]], float)
+    feats = np.concatenate([c + rng.normal(size=(n, 3)) for n, c in zip(sizes, centres)])
+    blob = np.repeat(np.arange(4), sizes)
+    order = rng.permutation(len(feats))            # the clusters are not runs of rows
+    feats, blob = feats[order], blob[order]
+    k = 5
+    picks = typical_picks(feats, 4, np.random.default_rng(0), k=k)
+    assert [int(blob[i]) for i in picks] == [0, 1, 2, 3]      # one per blob, largest first
+    for i in picks:
+        members = np.flatnonzero(blob == blob[i])
+        mean_knn = [np.mean(sorted(np.linalg.norm(feats[j] - feats[m]) for m in members if m != j)[:k])
+                    for j in members]
+        assert i == members[int(np.argmin(mean_knn))]
+    again = typical_picks(feats, 4, np.random.default_rng(0), k=k)
+    assert np.array_equal(picks, again)                        # the same seed, the same picks
 
 
 def test_bench_queue_draws_another_scenario_only_into_a_new_folder(demo, tmp_path):
