@@ -42,7 +42,7 @@ from .panels.queue import Entry as QueueEntryView, QueuePanel, load_live_queue, 
 QUEUE_BATCH = 50
 from .panels.signoff import SignoffList, SignoffPanel, flag_text
 from .panels.strip import ClipStrip
-from .shortcuts import COMMANDS, KeySheet, Keys
+from .shortcuts import BY_ID, COMMANDS, KeySheet, Keys
 
 CARRY_COUNT = 10
 MAX_CARRY = 500
@@ -868,7 +868,8 @@ class MainWindow(QMainWindow):
         def ended(text):
             self._hint_busy = False
             if self.project is not None and self.project.root == root and text is not None:
-                how = f"Assist ▸ Tune the model on accepted labels ({self.keys.text('batch.tune')})"
+                c = BY_ID["batch.tune"]
+                how = f"{c.group} ▸ {c.name} ({self.keys.text(c.id)})"
                 self.queue.set_hint(f"{text[0].upper()}{text[1:]}. {how}." if text else "")
             if self._hint_again and self.project is not None:
                 self._hint_again = False
