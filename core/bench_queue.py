@@ -34,7 +34,8 @@ STRATEGIES = ("random", "uniform", "kmeans", "uncertainty", "novelty", "combined
 # name -> (strategy of the first round, number of rounds). "uniform-first" starts from frames
 # spread evenly in time, which suit a very small budget better than doubt or novelty do (the
 # cold-start finding of Hacohen, Dekel & Weinshall, ICML 2022, "Active Learning on a Budget:
-# Opposite Strategies Suit High and Low Budgets").
+# Opposite Strategies Suit High and Low Budgets"); here neither it nor "typical-first", that
+# paper's TypiClust, beat the combined queue from the start (DEVELOPERS.md, session 15).
 # (the order keeps each strategy's random stream, seeded by its position, as it was)
 ROUNDS = {"2-round": ("combined", 2), "4-round": ("combined", 4), "3-round": ("combined", 3),
           "uniform-first": ("uniform", 2), "typical-first": ("typical", 2)}

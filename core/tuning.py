@@ -688,19 +688,22 @@ def suggestion(project) -> str:
     import importlib.util
     if importlib.util.find_spec("torch") is None:
         return ""
-    seen = 0
     text = project.store.get_meta(META_KEY)
+    t = None
     if text:
         try:
-            summary = json.loads(text).get("summary") or {}
-            if summary.get("reason") == CLEARED:
+            t = Tuning.from_json(text)      # the same reading, and damage, as stored_tuning's
+            if t.summary.get("reason") == CLEARED:
                 return ""
-            seen = int(summary.get("frames", 0))
-        except (ValueError, TypeError, AttributeError):
+        except (ValueError, KeyError, OSError, TypeError, AttributeError):
             return ""
     try:
         _, base_hash = _base_model_bytes(project)
     except (KinemarkError, OSError):
+        return ""
+    try:        # a tuning of another model file saw none of this model's labels
+        seen = int(t.summary.get("frames", 0)) if t is not None and t.base_hash == base_hash else 0
+    except (TypeError, ValueError):
         return ""
     pairs = labelled_pairs(project, base_hash)
     if len(pairs) < MIN_FRAMES or len({g for *_, g in pairs}) < MIN_PARTICIPANTS:
