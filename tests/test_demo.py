@@ -84,6 +84,7 @@ def test_bench_queue_runs_on_the_tiny_scenario(demo):
     table = run(budgets=(4, 8), seeds=(0,), project_dir=str(demo.project), say=lines.append)
     text = "\n".join(lines)
     assert "ceiling of the correction itself" in text and "at N=8" in text
+    assert "at N=8, paired by held-out split and seed: combined failure recall / random" in text
     assert "scenario seed 7;" in text and "onnxruntime " in text      # which draw, which libraries
     for strat in STRATEGIES:
         recall, oks_adapted, moves_adapted, moves_raw = table[(strat, 8)]
@@ -112,6 +113,7 @@ def test_bench_queue_tuning_part_runs_on_the_tiny_scenario(demo):
     text = "\n".join(lines)
     assert "4-round (the combined queue in 4 rounds of 2, ranked on the model in use" in text
     assert "typical-first (4 typical picks, then the combined queue in 1 round of 4," in text
+    assert "2-round, paired by held-out split and selection seed: / random " in text
     t = table["tuning"]
     assert set(t) == {"random", "uniform", *ROUNDS, "pool_ceiling"}
     for strat in ("random", "uniform", *ROUNDS):
@@ -159,3 +161,30 @@ def test_bench_queue_draws_another_scenario_only_into_a_new_folder(demo, tmp_pat
     assert sorted(x.name for x in tmp_path.iterdir()) == ["notes.txt"]
     with pytest.raises(KinemarkError, match="non-negative integer"):
         run(budgets=(4,), seeds=(0,), project_dir=str(tmp_path / "new"), scenario_seed=-1, say=lambda *a: None)
+
+
+def test_paired_ratio_interval_is_the_percentile_bootstrap_over_pairs():
+    """The bench's paired comparison: the ratio of means, and a 95% percentile bootstrap interval
+    that resamples whole pairs (Efron, Annals of Statistics, 1979). With 4 pairs there are only
+    4^4 equally likely resamples, so the bootstrap distribution is known exactly; the Monte Carlo
+    interval must sit near its 2.5th and 97.5th percentiles."""
+    import itertools
+    import re
+    from kinemark.core.bench_queue import paired_ratio
+    a = np.array([0.62, 0.71, 0.80, 0.55])
+    b = np.array([0.80, 0.79, 0.78, 0.90])
+    text = paired_ratio(a, b, "random", draws=40000)
+    ratio, lo, hi, wins, n = re.fullmatch(
+        r"/ random (\S+) \(95% interval (\S+)-(\S+), fewer moves in (\d) of (\d) pairs\)", text).groups()
+    assert float(ratio) == pytest.approx(a.mean() / b.mean(), abs=0.005)
+    exact = [a[list(i)].mean() / b[list(i)].mean() for i in itertools.product(range(4), repeat=4)]
+    e_lo, e_hi = np.percentile(exact, [2.5, 97.5])
+    assert float(lo) == pytest.approx(e_lo, abs=0.015) and float(hi) == pytest.approx(e_hi, abs=0.015)
+    assert (int(wins), int(n)) == (3, 4)
+    # pairing matters: runs where both strategies found the split hard move together, so the
+    # paired interval is narrow; the same numbers with the partners swapped give a wide one
+    hard = np.array([0.5, 1.0, 0.6, 1.1])
+    interval = lambda t: [float(x) for x in re.search(r"interval (\S+)-(\S+),", t).groups()]
+    lo1, hi1 = interval(paired_ratio(hard, hard + 0.1, "random"))
+    lo2, hi2 = interval(paired_ratio(hard, (hard + 0.1)[[1, 0, 3, 2]], "random"))
+    assert hi1 - lo1 < 0.5 * (hi2 - lo2)
