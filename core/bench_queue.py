@@ -12,7 +12,7 @@ frame nearest each centre); uncertainty only; novelty only (k-center
 greedy); and the combined queue. Printed per budget: failure recall (share
 of the pool's frames where the raw model's OKS to the truth is below 0.5
 that the first N picks contain) and, after adapting on the N picks, held-out
-mean OKS and joints needing a move per frame; at N=100 the ratios to random and uniform
+mean OKS and joints needing a move per frame; at N=100 (or the largest budget) the ratios to random and uniform
 are also given paired by held-out split and seed, with a bootstrap interval
 (:func:`paired_ratio`). Nothing is asserted.
 """

@@ -38,8 +38,8 @@ tuning 0.78 to 0.98 for every strategy but uncertainty-only (1.45); on the seed-
 2.72, tuning 0.87 to 0.96 (uncertainty-only 1.17). Tuned on every frame of the labelling pool,
 0.75 and 0.61. The combined queue in two rounds of 50 with a tuning between them (the queue
 ranking on the tuned model's proposals in the second): 0.70 and 0.75; in four rounds of 25,
-0.84 and 0.95. PyTorch's results differ by processor: on another machine the same seeds gave
-two rounds 0.73 and 0.85 against random 0.87 and 0.88 and uniform 0.79 and 0.89, so strategies
+0.84 and 0.95. PyTorch's results differ by processor: on another machine (selection seeds 0-2)
+two rounds gave 0.73 and 0.85 against random 0.87 and 0.88 and uniform 0.79 and 0.89, so strategies
 are compared within one run. See DEVELOPERS.md for the full table.
 
 PyTorch is an optional dependency (``pip install 'kinemark[tuning]'``); without it the
