@@ -39,9 +39,14 @@ STRATEGIES = ("random", "uniform", "kmeans", "uncertainty", "novelty", "combined
 # Opposite Strategies Suit High and Low Budgets"); here neither it nor "typical-first", that
 # paper's TypiClust, beat the combined queue from the start (DEVELOPERS.md, session 15).
 # (the order keeps each strategy's random stream, seeded by its position, as it was)
+# A third element names the strategy of the later rounds (default the combined queue): "badge"
+# is the gradient-embedding pick of :func:`badge_picks`, on the model in use.
 ROUNDS = {"2-round": ("combined", 2), "4-round": ("combined", 4), "3-round": ("combined", 3),
-          "uniform-first": ("uniform", 2), "typical-first": ("typical", 2)}
-TUNING_STRATEGIES = STRATEGIES + tuple(ROUNDS)
+          "uniform-first": ("uniform", 2), "typical-first": ("typical", 2),
+          "badge-2-round": ("badge", 2, "badge"), "combined-then-badge": ("combined", 2, "badge")}
+# strategies of the tuning part only (they need the network): BADGE in one round
+TUNING_ONLY = ("badge",)
+TUNING_STRATEGIES = STRATEGIES + tuple(ROUNDS) + TUNING_ONLY
 
 
 @dataclass
@@ -176,6 +181,64 @@ def typical_picks(feats: np.ndarray, n: int, rng, k: int = 20) -> np.ndarray:
     return np.array(picks, int)
 
 
+def gradient_embedding(dec, weights: dict, td, rows: np.ndarray, chans: np.ndarray) -> np.ndarray:
+    """Per frame of ``rows``, the gradient of the tuning's loss (:func:`tuning.train`: softmax
+    cross-entropy over each heatmap's cells against a Gaussian of ``TARGET_SIGMA`` cells) with
+    respect to the weights of the decoder's last 1x1 convolution, taking the model's own peak
+    cell as the label, summed over the crop and its mirror: the gradient embedding of BADGE
+    (Ash, Zhang, Krishnamurthy, Langford & Agarwal, "Deep Batch Active Learning by Diverse,
+    Uncertain Gradient Lower Bounds", ICLR 2020). Its length grows with the model's doubt (a
+    peaked heatmap at its own peak gives a small gradient) and its direction says which
+    weights the frame would move. (len(rows), len(chans) * features) float32."""
+    from . import tuning as T
+    torch = T._torch()
+    last = next(n for n in reversed(dec.nodes) if n.op_type == "Conv")
+    net = T.torch_decoder(dec, weights, outputs=[last.input[0], dec.output])
+    ch = torch.from_numpy(np.asarray(chans, np.int64))
+    out = []
+    with torch.no_grad():
+        for s in range(0, len(rows), 16):
+            r = rows[s:s + 16]
+            ins = [torch.from_numpy(f[r].reshape((-1,) + f.shape[2:]).astype(np.float32)) for f in td.features]
+            f, z = net(*ins)                                   # (B, F, H, W), (B, H, W, 39)
+            b, nf, h, w = f.shape
+            z = z.reshape(b, h * w, -1)[:, :, ch]
+            p = torch.softmax(z, dim=1)
+            peak = z.argmax(dim=1)                             # (B, C)
+            gy, gx = torch.meshgrid(torch.arange(h, dtype=torch.float32), torch.arange(w, dtype=torch.float32),
+                                    indexing="ij")
+            py, px = (peak // w).float(), (peak % w).float()
+            g = torch.exp(-((gx.reshape(1, -1, 1) - px[:, None]) ** 2 + (gy.reshape(1, -1, 1) - py[:, None]) ** 2)
+                          / (2 * T.TARGET_SIGMA ** 2))
+            g = g / g.sum(1, keepdim=True)
+            grad = torch.einsum("bfk,bkc->bcf", f.reshape(b, nf, h * w), p - g)
+            out.append(grad.reshape(len(r), 2, -1).sum(1).numpy())
+    return np.concatenate(out) if out else np.zeros((0, len(chans) * dec.weights[last.input[1]].shape[1]),
+                                                     np.float32)
+
+
+def kmeanspp_seeding(emb: np.ndarray, n: int, rng) -> np.ndarray:
+    """``n`` rows of ``emb`` picked by k-means++ seeding (Arthur & Vassilvitskii, "k-means++: The
+    Advantages of Careful Seeding", SODA 2007) as BADGE starts it: first the row of largest
+    norm, then each next row drawn with probability proportional to its squared distance to
+    the nearest row picked so far. Positions into ``emb``."""
+    x = np.asarray(emb, np.float64)
+    n = min(n, len(x))
+    if n == 0:
+        return np.zeros(0, int)
+    picks = [int(np.argmax((x ** 2).sum(1)))]
+    d2 = ((x - x[picks[0]]) ** 2).sum(1)
+    while len(picks) < n:
+        total = d2.sum()
+        if not total > 0:        # every row left coincides with a pick: take the first unpicked
+            j = int(np.flatnonzero(~np.isin(np.arange(len(x)), picks))[0])
+        else:
+            j = int(rng.choice(len(x), p=d2 / total))
+        picks.append(j)
+        d2 = np.minimum(d2, ((x - x[j]) ** 2).sum(1))
+    return np.array(picks, int)
+
+
 def paired_ratio(a: np.ndarray, b: np.ndarray, name: str, *, wins: str = "fewer moves", lower: bool = True,
                  draws: int = 10000, seed: int = 0) -> str:
     """mean(a) / mean(b) over paired runs (the same held-out split and selection seed), with a
@@ -227,7 +290,8 @@ def run(budgets=(25, 50, 100, 200), seeds=(0, 1, 2, 3, 4), project_dir="sample_p
     tuned one, else the correction, else the raw model) scored on the held-out participants.
     ``tuning_strategies``: which of TUNING_STRATEGIES to tune on (default all; random and
     uniform always, the ratios need them); the ones in ROUNDS are the combined queue in rounds
-    with a tuning between them, as a team would label, tune, and label on."""
+    with a tuning between them, as a team would label, tune, and label on; "badge" (TUNING_ONLY)
+    picks by the network's own gradients (:func:`gradient_embedding`), so only here."""
     from .errors import KinemarkError
     if tuning_strategies is not None:
         bad = sorted(set(tuning_strategies) - set(TUNING_STRATEGIES))
@@ -416,21 +480,30 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
                          RankWeights(seed=int(rng.integers(1 << 30))), pose_features(td.labels[got], skel))
         return rest[[p[0] for p in q.select(n)]]
 
+    def badge(w, rest, n, rng):
+        """BADGE's ``n`` picks from ``rest`` with the decoder weights ``w`` (the model in use)."""
+        return rest[kmeanspp_seeding(gradient_embedding(dec, w, td, rest, chans), n, rng)]
+
     def in_rounds(strat, cand, rng):
         """The picks of ROUNDS[strat]: the first round by its strategy (on the raw model's
         proposals), then after each round what ``kinemark adapt --tune`` does with the labels
         so far, and the next round from the combined queue ranked on the model then in use
         (the tuned one if its held-out check kept it, else the raw one)."""
-        first, k = ROUNDS[strat]
+        first, k, later = (ROUNDS[strat] + ("combined",))[:3]
         sizes = np.diff(np.linspace(0, budget, k + 1).round().astype(int))
-        got = np.sort(select(first, pool, cand, int(sizes[0]), rng))
+        got = np.sort(badge(dec.weights, cand, int(sizes[0]), rng) if first == "badge"
+                      else select(first, pool, cand, int(sizes[0]), rng))
         for n in sizes[1:]:
             if len(got) < T.MIN_FRAMES or len(set(pool.group[got].tolist())) < T.MIN_PARTICIPANTS:
                 w, why = None, "too few labels to tune on"      # kinemark adapt --tune refuses
             else:
                 w, _, why, _ = tuned_on(got)
             interim_kept[strat].append(not why)
-            got = np.sort(np.concatenate([got, next_round(got, cand, int(n), rng, None if why else w)]))
+            if later == "badge":
+                more = badge(dec.weights if why else w, np.setdiff1d(cand, got), int(n), rng)
+            else:
+                more = next_round(got, cand, int(n), rng, None if why else w)
+            got = np.sort(np.concatenate([got, more]))
         return got
 
     for held in splits:
@@ -447,6 +520,8 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
                 t1 = time.perf_counter()
                 if strat in ROUNDS:
                     picks = in_rounds(strat, cand, rng)
+                elif strat == "badge":
+                    picks = np.sort(badge(dec.weights, cand, budget, rng))
                 else:
                     picks = np.sort(select(strat, pool, cand, budget, rng))
                 w, corr, why, summary = tuned_on(picks)
@@ -480,11 +555,13 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
         say(f"network tuning at N={budget}: combined in-use moves / random = {comb[3] / rnd[3]:.2f}, / uniform = "
             f"{comb[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {comb[3] / comb[0]:.2f} (goal <= 0.5)")
     for strat in (s for s in strategies if s in ROUNDS):
-        r, (first, k), kept = out[strat], ROUNDS[strat], interim_kept[strat]
+        r, kept = out[strat], interim_kept[strat]
+        first, k, later = (ROUNDS[strat] + ("combined",))[:3]
         size = f"{'about ' if budget % k else ''}{budget // k}"
-        how = (f"the combined queue in {k} rounds of {size}" if first == "combined" else
-               f"{size} {first} picks, then the combined queue in {k - 1} round{'s' * (k > 2)} "
-               f"of {size}")
+        name = {"combined": "the combined queue", "badge": "BADGE"}
+        picks = {"combined": "picks from the combined queue", "badge": "picks by BADGE"}.get(first, f"{first} picks")
+        how = (f"{name[first]} in {k} rounds of {size}" if first == later else
+               f"{size} {picks}, then {name[later]} in {k - 1} round{'s' * (k > 2)} of {size}")
         say(f"network tuning at N={budget}, {strat} ({how}, "
             f"ranked on the model in use after the tuning that follows each round; the tunings between "
             f"rounds were kept in {sum(kept)} of {len(kept)}): in-use moves / random = {r[3] / rnd[3]:.2f}, "

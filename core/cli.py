@@ -440,8 +440,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--tuning", action="store_true",
                    help="queue: also measure network tuning (adapt --tune; needs PyTorch) at N=100")
     s.add_argument("--tuning-seeds", default=None, metavar="LIST",
-                   help="queue --tuning: selection seeds, e.g. 0,1 (default 0; each seed adds 57 tunings "
-                        "of about 35 s with every strategy)")
+                   help="queue --tuning: selection seeds, e.g. 0,1 (default 0; each seed adds a tuning of "
+                        "about 35 s per strategy and held-out split, one per round for those in rounds)")
     s.add_argument("--tuning-strategies", default=None, metavar="LIST",
                    help="queue --tuning: which strategies to tune on, e.g. combined,4-round (default all; "
                         "random and uniform always, the ratios need them)")

@@ -102,21 +102,24 @@ def test_bench_queue_tuning_part_runs_on_the_tiny_scenario(demo):
     the tuning with its held-out check, and the table says how many tunings were kept. (At this
     size the tunings are refused; the figures are the benchmark's.)"""
     pytest.importorskip("torch")
-    from kinemark.core.bench_queue import ROUNDS, run
+    from kinemark.core.bench_queue import ROUNDS, TUNING_ONLY, run
     from kinemark.core.errors import KinemarkError
     with pytest.raises(KinemarkError, match="unknown strategy best"):
         run(budgets=(8,), seeds=(0,), project_dir=str(demo.project), say=lambda *a: None, tuning=True,
             tuning_strategies=("combined", "best"))
     lines = []
     table = run(budgets=(8,), seeds=(0,), project_dir=str(demo.project), say=lines.append, tuning=True,
-                tuning_strategies=tuple(ROUNDS))
+                tuning_strategies=tuple(ROUNDS) + TUNING_ONLY)
     text = "\n".join(lines)
     assert "4-round (the combined queue in 4 rounds of 2, ranked on the model in use" in text
     assert "typical-first (4 typical picks, then the combined queue in 1 round of 4," in text
+    assert "badge-2-round (BADGE in 2 rounds of 4," in text
+    assert "combined-then-badge (4 picks from the combined queue, then BADGE in 1 round of 4," in text
     assert "2-round, paired by held-out split and selection seed: / random " in text
+    assert "badge, paired by held-out split and selection seed: / random " in text
     t = table["tuning"]
-    assert set(t) == {"random", "uniform", *ROUNDS, "pool_ceiling"}
-    for strat in ("random", "uniform", *ROUNDS):
+    assert set(t) == {"random", "uniform", *ROUNDS, *TUNING_ONLY, "pool_ceiling"}
+    for strat in ("random", "uniform", *ROUNDS, *TUNING_ONLY):
         raw, corr, tuned, in_use, kept, refused = t[strat]
         assert np.isfinite([raw, corr, tuned, in_use]).all() and 0 <= kept <= 1
         # the figure in use is the tuned model's when kept, else the correction's
@@ -188,3 +191,28 @@ def test_paired_ratio_interval_is_the_percentile_bootstrap_over_pairs():
     lo1, hi1 = interval(paired_ratio(hard, hard + 0.1, "random"))
     lo2, hi2 = interval(paired_ratio(hard, (hard + 0.1)[[1, 0, 3, 2]], "random"))
     assert hi1 - lo1 < 0.5 * (hi2 - lo2)
+
+
+def test_kmeanspp_seeding_draws_in_proportion_to_the_squared_distance():
+    """The bench's BADGE picks start k-means++ as that paper does (Arthur & Vassilvitskii, SODA
+    2007; Ash et al., ICLR 2020): the row of largest norm first, then each next row with
+    probability D(x)^2 / sum D^2, D the distance to the nearest pick so far. Checked on five
+    points by the frequencies of the second pick over many seeds, and that an exact duplicate
+    of a pick is never drawn while other rows remain."""
+    from kinemark.core.bench_queue import kmeanspp_seeding
+    x = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 2.0], [3.0, 0.0], [0.0, 4.0]])
+    first = 4                                                  # largest norm
+    d2 = ((x - x[first]) ** 2).sum(1)
+    expected = d2 / d2.sum()
+    draws = 4000
+    seconds = [kmeanspp_seeding(x, 2, np.random.default_rng(s))[1] for s in range(draws)]
+    assert all(kmeanspp_seeding(x, 1, np.random.default_rng(s))[0] == first for s in range(5))
+    freq = np.bincount(seconds, minlength=len(x)) / draws
+    assert freq[first] == 0
+    # binomial standard error at most 0.008 here; 4 of them
+    assert np.abs(freq - expected).max() < 0.032
+    dup = np.concatenate([x, x[[4, 4, 4]]])                    # three copies of the first pick
+    for s in range(50):
+        picks = kmeanspp_seeding(dup, 5, np.random.default_rng(s))
+        assert sorted(picks.tolist()) == [0, 1, 2, 3, 4]       # never one of the copies 5-7
+    assert len(kmeanspp_seeding(dup, 8, np.random.default_rng(0))) == 8     # duplicates once nothing else is left

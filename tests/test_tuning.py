@@ -257,6 +257,46 @@ def test_tuning_learns_a_planted_offset_on_frames_it_did_not_see(planted, tmp_pa
 
 
 @needs_model
+def test_gradient_embedding_is_the_training_losss_gradient_at_the_models_own_peak(planted, tmp_path, feature):
+    """The bench's BADGE strategy (Ash et al., ICLR 2020) embeds a frame as the gradient of the
+    training loss with respect to the last layer's weights, labelled with the model's own
+    prediction. Checked against PyTorch's automatic differentiation of that loss (the
+    train step's softmax cross-entropy against a Gaussian of TARGET_SIGMA cells, here centred
+    on each heatmap's peak cell) over both passes, for the shipped and for changed weights."""
+    from kinemark.core.bench_queue import gradient_embedding
+    sess, dec = feature
+    with _copy(planted, tmp_path) as p:
+        data, mapping = _data(p, feature)
+    ch = _channels(mapping)
+    last = next(n for n in reversed(dec.nodes) if n.op_type == "Conv")
+    rng = np.random.default_rng(3)
+    other = {k: v + rng.normal(0, 0.02, v.shape).astype(np.float32) for k, v in dec.weights.items()}
+    rows = np.array([0, 3, 5])
+    for weights in (dec.weights, other):
+        emb = gradient_embedding(dec, weights, data, rows, ch)
+        assert emb.shape == (3, len(ch) * dec.weights[last.input[1]].shape[1])
+        for r, i in enumerate(rows):
+            net = T.torch_decoder(dec, weights)
+            z = net(*[torch.from_numpy(f[[i]].reshape((-1,) + f.shape[2:]).astype(np.float32))
+                      for f in data.features])                     # (2, H, W, 39)
+            h, w = z.shape[1:3]
+            zz = z.reshape(2, h * w, -1)[:, :, torch.from_numpy(ch)]
+            peak = zz.argmax(1).detach()
+            yy, xx = np.divmod(np.arange(h * w), w)
+            loss = 0
+            for pas in range(2):
+                for c in range(len(ch)):
+                    py, px = divmod(int(peak[pas, c]), w)
+                    g = np.exp(-((xx - px) ** 2 + (yy - py) ** 2) / (2 * T.TARGET_SIGMA ** 2))
+                    g = torch.from_numpy(g / g.sum()).float()
+                    loss = loss - (g * torch.log_softmax(zz[pas, :, c], 0)).sum()
+            loss.backward()
+            grad = net.weight(last.input[1]).grad.numpy()[ch, :, 0, 0]
+            # float32 sums over 4096 cells and two passes: agreement to about 1e-4 of the largest
+            assert np.abs(grad.ravel() - emb[r]).max() < 1e-3 * max(1.0, np.abs(grad).max())
+
+
+@needs_model
 def test_decoded_points_and_doubt_are_what_the_adapter_stored(planted, tmp_path, feature):
     """With the raw decoder's weights, :func:`tuning.decoded` (torch, on the cached decoder
     inputs) gives back what pre-fill stored from ONNX Runtime's run of the whole model: the
