@@ -40,7 +40,9 @@ STRATEGIES = ("random", "uniform", "kmeans", "uncertainty", "novelty", "combined
 # paper's TypiClust, beat the combined queue from the start (DEVELOPERS.md, session 15).
 # (the order keeps each strategy's random stream, seeded by its position, as it was)
 # A third element names the strategy of the later rounds (default the combined queue): "badge"
-# is the gradient-embedding pick of :func:`badge_picks`, on the model in use.
+# is BADGE's pick (:func:`gradient_embedding`, :func:`kmeanspp_seeding`) on the model in use.
+# None of the BADGE variants beat two rounds of the combined queue over selection seeds 0-2
+# (DEVELOPERS.md, session 17).
 ROUNDS = {"2-round": ("combined", 2), "4-round": ("combined", 4), "3-round": ("combined", 3),
           "uniform-first": ("uniform", 2), "typical-first": ("typical", 2),
           "badge-2-round": ("badge", 2, "badge"), "combined-then-badge": ("combined", 2, "badge")}
