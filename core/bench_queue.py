@@ -51,6 +51,12 @@ TUNING_ONLY = ("badge",)
 TUNING_STRATEGIES = STRATEGIES + tuple(ROUNDS) + TUNING_ONLY
 
 
+def round_plan(strat: str) -> tuple[str, int, str]:
+    """(strategy of the first round, number of rounds, strategy of the later ones) of ROUNDS[strat]."""
+    first, k, *later = ROUNDS[strat]
+    return first, k, (later[0] if later else "combined")
+
+
 @dataclass
 class Pool:
     frame_ids: np.ndarray
@@ -185,7 +191,7 @@ def typical_picks(feats: np.ndarray, n: int, rng, k: int = 20) -> np.ndarray:
 
 def gradient_embedding(dec, weights: dict, td, rows: np.ndarray, chans: np.ndarray) -> np.ndarray:
     """Per frame of ``rows``, the gradient of the tuning's loss (:func:`tuning.train`: softmax
-    cross-entropy over each heatmap's cells against a Gaussian of ``TARGET_SIGMA`` cells) with
+    cross-entropy over each heatmap's cells against :func:`tuning.target_maps`) with
     respect to the weights of the decoder's last 1x1 convolution, taking the model's own peak
     cell as the label, summed over the crop and its mirror: the gradient embedding of BADGE
     (Ash, Zhang, Krishnamurthy, Langford & Agarwal, "Deep Batch Active Learning by Diverse,
@@ -207,12 +213,7 @@ def gradient_embedding(dec, weights: dict, td, rows: np.ndarray, chans: np.ndarr
             z = z.reshape(b, h * w, -1)[:, :, ch]
             p = torch.softmax(z, dim=1)
             peak = z.argmax(dim=1)                             # (B, C)
-            gy, gx = torch.meshgrid(torch.arange(h, dtype=torch.float32), torch.arange(w, dtype=torch.float32),
-                                    indexing="ij")
-            py, px = (peak // w).float(), (peak % w).float()
-            g = torch.exp(-((gx.reshape(1, -1, 1) - px[:, None]) ** 2 + (gy.reshape(1, -1, 1) - py[:, None]) ** 2)
-                          / (2 * T.TARGET_SIGMA ** 2))
-            g = g / g.sum(1, keepdim=True)
+            g = T.target_maps((peak % w).float(), (peak // w).float(), h, w)
             grad = torch.einsum("bfk,bkc->bcf", f.reshape(b, nf, h * w), p - g)
             out.append(grad.reshape(len(r), 2, -1).sum(1).numpy())
     return np.concatenate(out) if out else np.zeros((0, len(chans) * dec.weights[last.input[1]].shape[1]),
@@ -489,9 +490,9 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
     def in_rounds(strat, cand, rng):
         """The picks of ROUNDS[strat]: the first round by its strategy (on the raw model's
         proposals), then after each round what ``kinemark adapt --tune`` does with the labels
-        so far, and the next round from the combined queue ranked on the model then in use
-        (the tuned one if its held-out check kept it, else the raw one)."""
-        first, k, later = (ROUNDS[strat] + ("combined",))[:3]
+        so far, and the next round by its later strategy (the combined queue, or BADGE) on the
+        model then in use (the tuned one if its held-out check kept it, else the raw one)."""
+        first, k, later = round_plan(strat)
         sizes = np.diff(np.linspace(0, budget, k + 1).round().astype(int))
         got = np.sort(badge(dec.weights, cand, int(sizes[0]), rng) if first == "badge"
                       else select(first, pool, cand, int(sizes[0]), rng))
@@ -558,7 +559,7 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
             f"{comb[3] / uni[3]:.2f} (goal <= 0.8 each); / raw = {comb[3] / comb[0]:.2f} (goal <= 0.5)")
     for strat in (s for s in strategies if s in ROUNDS):
         r, kept = out[strat], interim_kept[strat]
-        first, k, later = (ROUNDS[strat] + ("combined",))[:3]
+        first, k, later = round_plan(strat)
         size = f"{'about ' if budget % k else ''}{budget // k}"
         name = {"combined": "the combined queue", "badge": "BADGE"}
         picks = {"combined": "picks from the combined queue", "badge": "picks by BADGE"}.get(first, f"{first} picks")

@@ -454,7 +454,6 @@ def train(dec: DecoderGraph, data: TuningData, rows: np.ndarray, *, epochs: int 
     T = data.targets[rows][:, :, chans]                     # (n, 2, C, 2)
     ok = torch.from_numpy(np.isfinite(T).all(-1))
     Tt = torch.from_numpy(np.nan_to_num(T)).float()
-    hh = ww = None
     items = [(k, p) for k in range(len(rows)) for p in (0, 1)]
     opt = torch.optim.Adam([q for q in net.parameters() if q.requires_grad], lr=lr)
     rng = np.random.default_rng(seed)
@@ -469,15 +468,10 @@ def train(dec: DecoderGraph, data: TuningData, rows: np.ndarray, *, epochs: int 
             ps = np.array([p for _, p in b])
             ins = [torch.from_numpy(f[rows[kk], ps].astype(np.float32)) for f in feats]
             z = net(*ins)                                   # (B, H, W, 39)
-            if hh is None:
-                hh, ww = z.shape[1], z.shape[2]
-                gy, gx = torch.meshgrid(torch.arange(hh, dtype=torch.float32),
-                                        torch.arange(ww, dtype=torch.float32), indexing="ij")
-                gx, gy = gx.reshape(1, -1, 1), gy.reshape(1, -1, 1)
+            hh, ww = z.shape[1], z.shape[2]
             logp = torch.log_softmax(z.reshape(len(b), hh * ww, -1)[:, :, chans_t], dim=1)
             t = Tt[kk, ps]                                  # (B, C, 2)
-            G = torch.exp(-((gx - t[:, None, :, 0]) ** 2 + (gy - t[:, None, :, 1]) ** 2) / (2 * sigma ** 2))
-            G = G / G.sum(1, keepdim=True).clamp_min(1e-12)
+            G = target_maps(t[..., 0], t[..., 1], hh, ww, sigma)
             m = ok[kk, ps].float()
             loss = -((G * logp).sum(1) * m).sum() / m.sum().clamp_min(1.0)
             opt.zero_grad()
@@ -486,6 +480,18 @@ def train(dec: DecoderGraph, data: TuningData, rows: np.ndarray, *, epochs: int 
         if progress is not None:
             progress(ep + 1, epochs, "training")
     return net.arrays()
+
+
+def target_maps(x, y, h: int, w: int, sigma: float = TARGET_SIGMA):
+    """The training targets: per (frame, channel) a Gaussian of ``sigma`` cells at heatmap cell
+    (x, y), normalised to sum to 1 over the h x w cells. x, y: torch tensors (B, C); returns
+    (B, h * w, C), the layout of the flattened logits the loss compares them with."""
+    torch = _torch()
+    gy, gx = torch.meshgrid(torch.arange(h, dtype=torch.float32), torch.arange(w, dtype=torch.float32),
+                            indexing="ij")
+    gx, gy = gx.reshape(1, -1, 1), gy.reshape(1, -1, 1)
+    G = torch.exp(-((gx - x[:, None, :]) ** 2 + (gy - y[:, None, :]) ** 2) / (2 * sigma ** 2))
+    return G / G.sum(1, keepdim=True).clamp_min(1e-12)
 
 
 def _frontier_features(dec: DecoderGraph, data: "TuningData", front: list) -> list:

@@ -292,7 +292,7 @@ def test_gradient_embedding_is_the_training_losss_gradient_at_the_models_own_pea
                     loss = loss - (g * torch.log_softmax(zz[pas, :, c], 0)).sum()
             loss.backward()
             grad = net.weight(last.input[1]).grad.numpy()[ch, :, 0, 0]
-            # float32 sums over 4096 cells and two passes: agreement to about 1e-4 of the largest
+            # float32 sums over 4096 cells and two passes: about 1e-4 of the largest seen, 1e-3 allowed
             assert np.abs(grad.ravel() - emb[r]).max() < 1e-3 * max(1.0, np.abs(grad).max())
 
 
