@@ -197,6 +197,10 @@ class Samples:
     area: np.ndarray
     vis: np.ndarray
 
+    def take(self, rows) -> "Samples":
+        """The samples of ``rows`` (indices or a boolean mask)."""
+        return Samples(self.X[rows], self.R[rows], self.groups[rows], self.area[rows], self.vis[rows])
+
 
 def _folds(groups: np.ndarray, max_folds: int = 6):
     uniq = sorted(set(groups.tolist()))
@@ -566,10 +570,13 @@ def fit_correction(s: Samples, sigmas: np.ndarray, model_hash: str = "", *,
     return corr
 
 
-def evaluate(corr: Correction | None, s: Samples, sigmas: np.ndarray) -> dict:
-    """Mean OKS-style similarity and joints needing a move, raw vs corrected, on samples ``s``."""
+def evaluate(corr: Correction | None, s: Samples, sigmas: np.ndarray, *, pred: np.ndarray | None = None) -> dict:
+    """Mean OKS-style similarity and joints needing a move, raw vs corrected, on samples ``s``.
+    ``pred``: the predicted residuals (N, K, 2) when they come from elsewhere than ``corr``
+    (say, each fold's own correction)."""
     N, K, _ = s.R.shape
-    pred = corr.predict_residual(s.X, K) if corr is not None else np.zeros((N, K, 2))
+    if pred is None:
+        pred = corr.predict_residual(s.X, K) if corr is not None else np.zeros((N, K, 2))
     lab = s.vis > 0
     err_raw = np.nansum(s.R ** 2, axis=2)
     err_fit = np.nansum((s.R - pred) ** 2, axis=2)
@@ -612,6 +619,14 @@ def samples_from(pairs, K: int, *, with_embedding: bool, with_regression: bool =
     if not X:
         return Samples(np.zeros((0, 3 * K)), np.zeros((0, K, 2)), np.array([]), np.array([]), np.zeros((0, K)))
     return Samples(np.array(X), np.array(R), np.array(G), np.array(A), np.array(V))
+
+
+def samples_for_fit(pairs, K: int, *, with_embedding: bool = True) -> tuple[Samples, bool, bool]:
+    """(samples, with the embedding, with the regression head's points) as :func:`fit_project`
+    fits a project's correction: each feature only when every proposal has it."""
+    use_emb = with_embedding and all(p.embedding is not None for p, *_ in pairs)
+    use_reg = all(regressed_points(p.signals, K) is not None for p, *_ in pairs)
+    return samples_from(pairs, K, with_embedding=use_emb, with_regression=use_reg), use_emb, use_reg
 
 
 class Corrector:
@@ -701,9 +716,7 @@ def fit_project(project, *, with_embedding: bool = True, user: str | None = None
     model_hash = max(hashes, key=lambda h: sum(p.model_hash == h for p, *_ in pairs))
     pairs = [x for x in pairs if x[0].model_hash == model_hash]
     K = project.skeleton.num_keypoints
-    use_emb = with_embedding and all(p.embedding is not None for p, *_ in pairs)
-    use_reg = all(regressed_points(p.signals, K) is not None for p, *_ in pairs)
-    s = samples_from(pairs, K, with_embedding=use_emb, with_regression=use_reg)
+    s, use_emb, use_reg = samples_for_fit(pairs, K, with_embedding=with_embedding)
     corr = fit_correction(s, project.skeleton.sigma_array, model_hash)
     corr.with_embedding = use_emb
     corr.with_regression = use_reg

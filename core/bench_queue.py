@@ -461,11 +461,11 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
                       regions=[td.regions[i] for i in picks], targets=td.targets[picks],
                       labels=td.labels[picks], area=td.area[picks], groups=td.groups[picks],
                       frame_ids=td.frame_ids[picks], proposed=td.proposed[picks], cache={})
-        summary = T.cross_validate(dec, sub, sig, mapping, chans)
+        s = _subset(pool, picks, pool.Rlab)
+        corr = fit_correction(s, sig)
+        summary = T.cross_validate(dec, sub, sig, mapping, chans, correction=s if corr.active else None)
         w = T.train(dec, sub, np.arange(len(picks)))
-        corr = fit_correction(_subset(pool, picks, pool.Rlab), sig)
-        corr_moves = corr.summary.get("heldout_moves_adapted") if corr.active else None
-        return w, corr, T.why_not(summary, corr_moves), summary
+        return w, corr, T.why_not(summary, corr.active), summary
 
     def next_round(got, cand, n, rng, w_in_use):
         """The combined queue's next ``n`` picks once ``got`` are labelled, ranked as LiveQueue
@@ -537,8 +537,13 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
                 kept = not why
                 in_use = tuned_moves if kept else ev["moves_adapted"]
                 # refused because its held-out check did not beat the raw model (1) or the correction (2)
-                refused = 0 if kept else (1 if T.why_not(summary, None) else 2)
-                rows[strat].append((raw_moves, ev["moves_adapted"], tuned_moves, in_use, kept, refused))
+                refused = 0 if kept else (1 if T.why_not(summary, False) else 2)
+                # the check's figures on the labelled participants, to score its choice between the
+                # tuning and the correction against the held-out participants (NaN: no correction)
+                nested = summary.get("heldout_moves_correction", np.nan)
+                own = corr.summary["heldout_moves_adapted"] if corr.active else np.nan
+                rows[strat].append((raw_moves, ev["moves_adapted"], tuned_moves, in_use, kept, refused,
+                                    summary["heldout_moves_tuned"], nested, own))
         say(f"  held out {'+'.join(held)}: {done} of {len(splits) * len(seeds) * len(rows)} "
             f"tunings done, {time.perf_counter() - t0:.0f} s so far")
     say(f"{'strategy':<12}| raw   correction  tuned  in use  (tuning kept)   [joints to move per frame, "
@@ -546,12 +551,27 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
     out = {}
     for strat in strategies:
         r = np.array(rows[strat], float)
-        out[strat] = r.mean(axis=0)
+        out[strat] = r[:, :6].mean(axis=0)
         why = [f"{int((r[:, 5] == k).sum())} as no better than {what}" for k, what in
                ((1, "the raw model"), (2, "the correction")) if (r[:, 5] == k).any()]
         say(f"{strat:<12}| {r[:, 0].mean():4.2f}  {r[:, 1].mean():6.2f}  {r[:, 2].mean():9.2f}  "
             f"{r[:, 3].mean():5.2f}   {int(r[:, 4].sum())} of {len(r)}"
             + (f" (refused {', '.join(why)}, by the check on the labelled participants)" if why else ""))
+    # the held-out check's choice between the tuning and a correction, against the held-out
+    # participants: scored with the correction on the same folds (nested, what the check does)
+    # and with the correction's own cross-validated figure (what it did before session 18)
+    every = np.array([r for strat in strategies for r in rows[strat]], float)
+    both = every[np.isfinite(every[:, 7])]
+    if len(both):
+        better = both[:, 2] < both[:, 1]                # the tuning leaves fewer moves on held-out participants
+        right_nested = int(((both[:, 6] < both[:, 7]) == better).sum())
+        right_own = int(((both[:, 6] < both[:, 8]) == better).sum())
+        say(f"network tuning: the held-out check's choice between the tuning and a correction fitted on the same "
+            f"labels, against the held-out participants: right in {right_nested} of {len(both)} (the tuning "
+            f"better in {int(better.sum())}); with the correction's own cross-validated figure instead, right in "
+            f"{right_own}; mean figures on the labelled participants: tuning {both[:, 6].mean():.2f}, correction "
+            f"on the same folds {both[:, 7].mean():.2f}, its own {both[:, 8].mean():.2f}; on the held-out "
+            f"participants {both[:, 2].mean():.2f} and {both[:, 1].mean():.2f}")
     rnd, uni = out["random"], out["uniform"]
     if "combined" in out:
         comb = out["combined"]

@@ -27,8 +27,10 @@ instead of a single cell. Fixed schedule: 10 passes over the labelled crops, lea
 tuned on the benchmark's held-out participants).
 
 Held out: as for the correction, the tuned decoder is kept only when it beats the raw model
-on participants it was not trained on (folds grouped by participant); its held-out figures
-are stored beside it. The tuned weights are kept in the project database and written into
+on participants it was not trained on (folds grouped by participant) and, in a project that
+uses a correction, a correction fitted on the same labels and scored on the same held-out
+participants (nested cross-validation, :func:`cross_validate`); its held-out figures are stored
+beside it. The tuned weights are kept in the project database and written into
 the model in memory when the pose model loads; a proposal from the tuned model has its own
 model hash and its points count as adapted. A person's points are never touched.
 
@@ -395,7 +397,7 @@ def labelled_pairs(project, base_hash: str):
     submitted labels holding a person's points whose frame the raw model proposed."""
     from .adapt import _pairs_from_project
     return [(prop, kps, area, group) for prop, kps, area, group in _pairs_from_project(project)
-            if prop.model_hash == base_hash]
+            if prop.model_hash == base_hash and prop.region]
 
 
 def collect(project, pairs, session, dec: DecoderGraph, mapping, progress=None, cancel=None) -> TuningData:
@@ -592,10 +594,24 @@ def grouped_folds(groups: np.ndarray, max_folds: int = MAX_FOLDS) -> list[np.nda
     return [np.isin(groups, uniq[i::k]) for i in range(k)] if k >= 2 else []
 
 
-def cross_validate(dec, data, sigmas, mapping, channels, progress=None, cancel=None) -> dict:
-    """Raw vs tuned on held-out participants: each fold's decoder is trained without them."""
+def cross_validate(dec, data, sigmas, mapping, channels, progress=None, cancel=None, *,
+                   correction=None) -> dict:
+    """Raw vs tuned on held-out participants: each fold's decoder is trained without them.
+
+    ``correction``: the correction's samples (:class:`adapt.Samples`) of the same frames in the
+    same order. A correction is then fitted on each fold's other participants, as ``kinemark
+    adapt`` fits one (choosing its own settings by cross-validation among them), and scored on
+    the fold's held-out participants with the tuning's definition of a move
+    (``heldout_moves_correction``): nested cross-validation (Varma & Simon, "Bias in error
+    estimation when using cross-validation for model selection", BMC Bioinformatics 2006). The
+    correction's own held-out figure is not comparable with the tuning's: it is the best of its
+    many candidates per joint scored on the very folds that chose it, which flatters it (Cawley &
+    Talbot, "On over-fitting in model selection and subsequent selection bias in performance
+    evaluation", JMLR 2010), and it leaves out the points the model did not propose."""
     folds = grouped_folds(data.groups)
     n = len(data.frame_ids)
+    if correction is not None and len(correction.R) != n:
+        raise ValueError(f"the correction's samples hold {len(correction.R)} frames, the tuning's {n}")
     raw_xy = points(data, np.arange(n), heatmaps(dec, dec.weights, data, np.arange(n)), mapping, channels)
     tuned_xy = np.full_like(raw_xy, np.nan)
     for f, held in enumerate(folds):
@@ -607,9 +623,34 @@ def cross_validate(dec, data, sigmas, mapping, channels, progress=None, cancel=N
     rows = np.arange(n)
     s_raw, m_raw = moves(data, rows, raw_xy, sigmas)
     s_tun, m_tun = moves(data, rows, tuned_xy, sigmas)
-    return {"frames": int(n), "participants": int(len(set(data.groups.tolist()))), "folds": len(folds),
-            "heldout_similarity_raw": s_raw, "heldout_similarity_tuned": s_tun,
-            "heldout_moves_raw": m_raw, "heldout_moves_tuned": m_tun}
+    out = {"frames": int(n), "participants": int(len(set(data.groups.tolist()))), "folds": len(folds),
+           "heldout_similarity_raw": s_raw, "heldout_similarity_tuned": s_tun,
+           "heldout_moves_raw": m_raw, "heldout_moves_tuned": m_tun}
+    if correction is not None and folds:
+        if progress is not None:
+            progress(len(folds), len(folds) + 1, "fitting a correction on the same folds, to compare")
+        out["heldout_similarity_correction"], out["heldout_moves_correction"] = \
+            correction_on_folds(correction, data, sigmas, folds)
+    return out
+
+
+def correction_on_folds(s, data: TuningData, sigmas, folds) -> tuple[float, float]:
+    """(mean keypoint similarity, joints needing a move per frame) of the raw model's proposals
+    after a correction fitted without each fold, on that fold's frames; scored as :func:`moves`
+    scores the tuning (a point the model did not propose counts as a move). ``s``: the
+    correction's samples of ``data``'s frames, in the same order."""
+    from .adapt import Samples, evaluate, fit_correction
+    N, K, _ = s.R.shape
+    pred = np.zeros((N, K, 2))
+    for held in folds:
+        corr = fit_correction(s.take(~held), sigmas)
+        if corr.active:
+            pred[held] = corr.predict_residual(s.X[held], K)
+    R = s.R.copy()
+    if data.proposed is not None:
+        R[~data.proposed] = np.nan
+    ev = evaluate(None, Samples(s.X, R, s.groups, s.area, s.vis), sigmas, pred=pred)
+    return ev["oks_adapted"], ev["moves_adapted"]
 
 
 # ---- the project operation ----------------------------------------------------------------
@@ -654,11 +695,14 @@ def tune_project(project, *, user: str | None = None, progress=None, cancel=None
     channels = channels[channels < L.NUM_BODY].astype(int)
     td = collect(project, pairs, sess, dec, mapping, progress=progress, cancel=cancel)
     _check_cancel(cancel)
-    summary = cross_validate(dec, td, skel.sigma_array, mapping, channels, progress=progress, cancel=cancel)
-    _check_cancel(cancel)
-    from .adapt import load_correction
+    from .adapt import load_correction, samples_for_fit
     corr = load_correction(project, base_hash)
-    reason = why_not(summary, corr.summary.get("heldout_moves_adapted") if corr is not None else None)
+    # the alternative to the tuning is the project's correction when it has one: then a
+    # correction fitted on these labels is scored on the same held-out participants
+    summary = cross_validate(dec, td, skel.sigma_array, mapping, channels, progress=progress, cancel=cancel,
+                             correction=samples_for_fit(pairs, skel.num_keypoints)[0] if corr is not None else None)
+    _check_cancel(cancel)
+    reason = why_not(summary, corr is not None)
     if reason:
         summary["reason"] = reason
         t = Tuning(base_hash, {}, summary, active=False)
@@ -725,17 +769,19 @@ def suggestion(project) -> str:
             f"(its check on held-out participants decides whether it is used)")
 
 
-def why_not(summary: dict, correction_moves: float | None) -> str:
-    """Why a tuning with held-out figures ``summary`` is not to be used ("" when it is): it must
-    leave fewer joints to move than the raw model, and fewer than the project's correction
-    (``correction_moves``, its own held-out figure, when it has an active one)."""
+def why_not(summary: dict, with_correction: bool) -> str:
+    """Why a tuning with held-out figures ``summary`` (:func:`cross_validate`) is not to be used
+    ("" when it is): it must leave fewer joints to move than the raw model and, when the project
+    uses a correction (``with_correction``), fewer than a correction fitted on the same labels,
+    both scored on the same held-out participants (``heldout_moves_correction``)."""
     tuned, raw = summary["heldout_moves_tuned"], summary["heldout_moves_raw"]
     if not tuned < raw:
         return (f"on held-out participants the tuned model left {tuned:.2f} joints per frame to move "
                 f"against {raw:.2f} for the raw model")
-    if correction_moves is not None and correction_moves <= tuned:
-        return (f"the project's correction already leaves {correction_moves:.2f} joints per frame to move "
-                f"on held-out participants, no more than the tuned model's {tuned:.2f}")
+    corr = summary.get("heldout_moves_correction")
+    if with_correction and corr is not None and corr <= tuned:
+        return (f"a correction fitted on the same labels leaves {corr:.2f} joints per frame to move on the "
+                f"same held-out participants, no more than the tuned model's {tuned:.2f}")
     return ""
 
 

@@ -347,6 +347,95 @@ def test_held_out_participants_never_reach_the_training(planted, tmp_path, featu
 
 
 @needs_model
+def test_the_correction_it_is_weighed_against_is_fitted_without_the_held_out_and_scored_alike(
+        planted, tmp_path, feature, monkeypatch):
+    """The check weighs the tuning against a correction fitted on the same labels, scored on
+    the same held-out participants (nested cross-validation): each fold's correction sees none of
+    that fold's participants, the planted offset is learnt on frames it did not see (OKS
+    similarity rises, pycocotools' per-keypoint form), and with no correction at all the figure
+    is the tuning's own scoring of the stored proposals, a point the model did not propose
+    counting as a move."""
+    from kinemark.core import adapt
+    with _copy(planted, tmp_path) as p:
+        data, mapping = _data(p, feature)
+        _, base = T._base_model_bytes(p)
+        s = adapt.samples_for_fit(T.labelled_pairs(p, base), p.skeleton.num_keypoints)[0]
+        sig = p.skeleton.sigma_array
+        stored = np.stack([p.store.proposal(int(f), raw=True).keypoints[:, :2] for f in data.frame_ids])
+    data.groups = np.array([f"P{i % 4}" for i in range(len(data.frame_ids))])
+    s.groups = data.groups
+    folds = T.grouped_folds(data.groups)
+    seen = []
+    real = adapt.fit_correction
+
+    def spy(samples, sigmas, *a, **k):
+        seen.append(set(samples.groups.tolist()))
+        return real(samples, sigmas, *a, **k)
+    monkeypatch.setattr(adapt, "fit_correction", spy)
+    rows = np.arange(len(data.frame_ids))
+    sim_raw, _ = T.moves(data, rows, stored, sig)
+    sim, _ = T.correction_on_folds(s, data, sig, folds)
+    assert len(seen) == len(folds) == 3
+    for fold, groups in zip(folds, seen):
+        assert groups.isdisjoint(set(data.groups[fold].tolist()))
+    assert sim > sim_raw + 0.02, (sim, sim_raw)
+    # no correction kept on any fold: the stored proposals, scored as the tuning scores points
+    monkeypatch.setattr(adapt, "fit_correction", lambda samples, sigmas, *a, **k: adapt.Correction(
+        model_hash="", use=np.zeros(samples.R.shape[1], bool)))
+    j3 = np.flatnonzero((data.labels[0, :, 2] > 0) & data.proposed[0] & np.isfinite(s.R[0]).all(axis=1))[:3]
+    assert len(j3) == 3
+    data.labels = data.labels.copy()
+    data.labels[0, j3, :2] = stored[0, j3]          # three points labelled where the model put them
+    s.R[0, j3] = 0.0
+    before = T.moves(data, rows, stored, sig)
+    assert T.correction_on_folds(s, data, sig, folds) == pytest.approx(before)
+    data.proposed = data.proposed.copy()
+    data.proposed[0, j3] = False                    # ... which the model now "did not propose"
+    after = T.moves(data, rows, stored, sig)
+    assert after[1] == pytest.approx(before[1] + 3 / len(rows))
+    assert T.correction_on_folds(s, data, sig, folds) == pytest.approx(after)
+
+
+def test_why_not_weighs_the_tuning_against_the_raw_model_and_the_correction_on_the_same_folds():
+    s = {"heldout_moves_raw": 2.0, "heldout_moves_tuned": 1.0, "heldout_moves_correction": 0.9}
+    assert "a correction fitted on the same labels leaves 0.90" in T.why_not(s, True)
+    assert T.why_not(s, False) == ""                 # the project uses no correction: raw is the alternative
+    assert T.why_not({**s, "heldout_moves_correction": 1.1}, True) == ""
+    assert "against 2.00 for the raw model" in T.why_not({**s, "heldout_moves_tuned": 2.0}, True)
+    assert T.why_not({k: v for k, v in s.items() if k != "heldout_moves_correction"}, True) == ""
+
+
+@needs_model
+def test_tune_weighs_against_a_correction_only_when_the_project_uses_one(planted, tmp_path, monkeypatch):
+    """tune_project hands the check the correction's samples of exactly its labelled frames when
+    the project has an active correction, and none otherwise; the refusal names the same-fold
+    figure."""
+    from kinemark.core import adapt
+    got = []
+
+    def fake(dec, data, sigmas, mapping, channels, progress=None, cancel=None, *, correction=None):
+        got.append((len(data.frame_ids), None if correction is None else len(correction.R)))
+        out = {"frames": len(data.frame_ids), "participants": 2, "folds": 2, "heldout_similarity_raw": 0.8,
+               "heldout_similarity_tuned": 0.9, "heldout_moves_raw": 1.0, "heldout_moves_tuned": 0.5}
+        if correction is not None:
+            out["heldout_moves_correction"] = 0.4
+        return out
+    monkeypatch.setattr(T, "cross_validate", fake)
+    monkeypatch.setattr(T, "train", lambda dec, data, rows, **k: dict(dec.weights))
+    with _copy(planted, tmp_path) as p:
+        _, base = T._base_model_bytes(p)
+        monkeypatch.setattr(adapt, "load_correction", lambda project, h: None)
+        _, t = T.tune_project(p)
+        assert t.active and got[-1][1] is None
+        monkeypatch.setattr(adapt, "load_correction", lambda project, h: adapt.Correction(
+            model_hash=h, use=np.ones(p.skeleton.num_keypoints, bool)))
+        ch, t = T.tune_project(p)
+        n = len(T.labelled_pairs(p, base))
+        assert got[-1] == (n, n)
+        assert not t.active and "a correction fitted on the same labels leaves 0.40" in ch.message
+
+
+@needs_model
 def test_tuning_that_does_worse_on_another_participant_is_not_used(planted, tmp_path):
     """The two participants of the test set are filmed differently (a front-view reach, an
     oblique sit-to-stand); trained on one, the decoder does worse on the other than the raw
