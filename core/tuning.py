@@ -604,10 +604,11 @@ def cross_validate(dec, data, sigmas, mapping, channels, progress=None, cancel=N
     the fold's held-out participants with the tuning's definition of a move
     (``heldout_moves_correction``): nested cross-validation (Varma & Simon, "Bias in error
     estimation when using cross-validation for model selection", BMC Bioinformatics 2006). The
-    correction's own held-out figure is not comparable with the tuning's: it is the best of its
-    many candidates per joint scored on the very folds that chose it, which flatters it (Cawley &
-    Talbot, "On over-fitting in model selection and subsequent selection bias in performance
-    evaluation", JMLR 2010), and it leaves out the points the model did not propose."""
+    correction's own held-out figure is not comparable with the tuning's: it leaves out the
+    points the model did not propose, which the tuning's figure counts as moves, it comes from
+    other folds, and it is the best of many candidates per joint scored on the very folds that
+    chose it, which can flatter it (Cawley & Talbot, "On over-fitting in model selection and
+    subsequent selection bias in performance evaluation", JMLR 2010)."""
     folds = grouped_folds(data.groups)
     n = len(data.frame_ids)
     if correction is not None and len(correction.R) != n:
