@@ -721,7 +721,9 @@ def tune_project(project, *, user: str | None = None, progress=None, cancel=None
     figures = (f"from {s['frames']} labelled frames ({s['participants']} participants, {s['folds']} folds): "
                f"on held-out participants mean keypoint similarity {s['heldout_similarity_raw']:.3f} raw -> "
                f"{s['heldout_similarity_tuned']:.3f} tuned, joints needing a move per frame "
-               f"{s['heldout_moves_raw']:.2f} -> {s['heldout_moves_tuned']:.2f}")
+               f"{s['heldout_moves_raw']:.2f} -> {s['heldout_moves_tuned']:.2f}"
+               + (f" ({s['heldout_moves_correction']:.2f} with a correction fitted on the same labels)"
+                  if "heldout_moves_correction" in s else ""))
     if t.active:
         msg = f"tuned the model's heatmap layers {figures}; pre-filled {len(changed)} untouched frame(s) again"
     else:

@@ -425,14 +425,15 @@ def test_tune_weighs_against_a_correction_only_when_the_project_uses_one(planted
     with _copy(planted, tmp_path) as p:
         _, base = T._base_model_bytes(p)
         monkeypatch.setattr(adapt, "load_correction", lambda project, h: None)
-        _, t = T.tune_project(p)
-        assert t.active and got[-1][1] is None
+        ch, t = T.tune_project(p)
+        assert t.active and got[-1][1] is None and "with a correction fitted" not in ch.message
         monkeypatch.setattr(adapt, "load_correction", lambda project, h: adapt.Correction(
             model_hash=h, use=np.ones(p.skeleton.num_keypoints, bool)))
         ch, t = T.tune_project(p)
         n = len(T.labelled_pairs(p, base))
         assert got[-1] == (n, n)
         assert not t.active and "a correction fitted on the same labels leaves 0.40" in ch.message
+        assert "1.00 -> 0.50 (0.40 with a correction fitted on the same labels)" in ch.message
 
 
 @needs_model
