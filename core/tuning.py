@@ -701,7 +701,8 @@ def tune_project(project, *, user: str | None = None, progress=None, cancel=None
     # the alternative to the tuning is the project's correction when it has one: then a
     # correction fitted on these labels is scored on the same held-out participants
     summary = cross_validate(dec, td, skel.sigma_array, mapping, channels, progress=progress, cancel=cancel,
-                             correction=samples_for_fit(pairs, skel.num_keypoints)[0] if corr is not None else None)
+                             correction=None if corr is None else
+                             samples_for_fit(pairs, skel.num_keypoints, with_embedding=corr.with_embedding)[0])
     _check_cancel(cancel)
     reason = why_not(summary, corr is not None)
     if reason:

@@ -411,10 +411,11 @@ def test_tune_weighs_against_a_correction_only_when_the_project_uses_one(planted
     the project has an active correction, and none otherwise; the refusal names the same-fold
     figure."""
     from kinemark.core import adapt
-    got = []
+    got, widths = [], []
 
     def fake(dec, data, sigmas, mapping, channels, progress=None, cancel=None, *, correction=None):
         got.append((len(data.frame_ids), None if correction is None else len(correction.R)))
+        widths.append(None if correction is None else correction.X.shape[1])
         out = {"frames": len(data.frame_ids), "participants": 2, "folds": 2, "heldout_similarity_raw": 0.8,
                "heldout_similarity_tuned": 0.9, "heldout_moves_raw": 1.0, "heldout_moves_tuned": 0.5}
         if correction is not None:
@@ -434,6 +435,12 @@ def test_tune_weighs_against_a_correction_only_when_the_project_uses_one(planted
         assert got[-1] == (n, n)
         assert not t.active and "a correction fitted on the same labels leaves 0.40" in ch.message
         assert "1.00 -> 0.50 (0.40 with a correction fitted on the same labels)" in ch.message
+        # the compared correction sees the features the project's correction was fitted with
+        monkeypatch.setattr(adapt, "load_correction", lambda project, h: adapt.Correction(
+            model_hash=h, use=np.ones(p.skeleton.num_keypoints, bool), with_embedding=True))
+        T.tune_project(p)
+        emb = T.labelled_pairs(p, base)[0][0].embedding
+        assert emb is not None and widths[-1] == widths[-2] + np.asarray(emb).size
 
 
 @needs_model
