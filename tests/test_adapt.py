@@ -70,14 +70,11 @@ def test_held_out_participants_never_reach_the_fit():
     """Fitting on the training participants only: changing the held-out people's data changes nothing."""
     full = _synthetic(seed=5, groups=("A", "B", "C", "D", "E"))
     train_mask = np.isin(full.groups, ["A", "B", "C"])
-
-    def subset(s, m):
-        return Samples(s.X[m], s.R[m], s.groups[m], s.area[m], s.vis[m])
-    c1 = fit_correction(subset(full, train_mask), SIG)
+    c1 = fit_correction(full.take(train_mask), SIG)
     tampered = Samples(full.X.copy(), full.R.copy(), full.groups, full.area, full.vis)
     tampered.R[~train_mask] += 5.0
     tampered.X[~train_mask] *= -3
-    c2 = fit_correction(subset(tampered, train_mask), SIG)
+    c2 = fit_correction(tampered.take(train_mask), SIG)
     for j in c1.models:
         for a, b in zip(c1.models[j], c2.models[j]):
             np.testing.assert_array_equal(a, b)
@@ -145,7 +142,7 @@ def test_no_correction_for_frames_unlike_every_labelled_one():
     # give). Cross-validation over those labels cannot see how the fit extrapolates, so frames
     # far from every labelled one keep the raw proposal; frames like them are corrected.
     s, view = _one_view_offset(4, ("A", "B", "C", "D", "E"), share=0.5)
-    train = Samples(s.X[view], s.R[view], s.groups[view], s.area[view], s.vis[view])
+    train = s.take(view)
     corr = fit_correction(train, SIG)
     assert corr.use[13]
     other, other_view = _one_view_offset(5, ("F", "G"), share=0.5)
