@@ -46,8 +46,13 @@ STRATEGIES = ("random", "uniform", "kmeans", "uncertainty", "novelty", "combined
 ROUNDS = {"2-round": ("combined", 2), "4-round": ("combined", 4), "3-round": ("combined", 3),
           "uniform-first": ("uniform", 2), "typical-first": ("typical", 2),
           "badge-2-round": ("badge", 2, "badge"), "combined-then-badge": ("combined", 2, "badge")}
-# strategies of the tuning part only (they need the network): BADGE in one round
-TUNING_ONLY = ("badge",)
+# diagnostic picks that read the exact truth, which no team has: the uncertainty-only and the
+# combined queue with the model's doubt replaced by its true error per joint (:func:`true_doubt`).
+# They bound what better doubt signals could do for selection; not strategies the product runs
+ORACLES = ("oracle-uncertainty", "oracle-combined")
+# strategies of the tuning part only (they need the network, or are diagnostics): BADGE in one
+# round, and the oracles
+TUNING_ONLY = ("badge",) + ORACLES
 TUNING_STRATEGIES = STRATEGIES + tuple(ROUNDS) + TUNING_ONLY
 
 
@@ -75,6 +80,7 @@ class Pool:
     kps: np.ndarray        # the raw proposals (x, y, v) and their per-joint doubt, for re-ranking
     conf: np.ndarray
     sig: dict
+    sigmas: np.ndarray | None = None   # the skeleton's OKS sigmas (for :func:`true_doubt`)
 
 
 def _residual(prop_xy, target, conf, region, pv):
@@ -127,7 +133,22 @@ def load_pool(project, clips_dir, seed: int = 0) -> Pool:
     return Pool(np.array(ids), np.array(rows["media"]), np.array(rows["index"]), np.array(rows["group"]),
                 np.array(rows["raw"]), unc, pose_features(kps, skel), np.stack(rows["thumbs"]),
                 np.stack(rows["X"]), np.stack(rows["Rt"]), np.stack(rows["Rl"]), np.array(rows["area"]),
-                np.stack(rows["vis"]), kps, conf, sig)
+                np.stack(rows["vis"]), kps, conf, sig, skel.sigma_array)
+
+
+def true_doubt(pool: Pool, pos: np.ndarray) -> np.ndarray:
+    """(len(pos), K) the raw proposal's true error per joint, as the queue's doubt would be if it
+    were perfect: one minus the keypoint's OKS similarity to the exact truth (a labelled joint
+    the model did not propose counts 1, an unlabelled one 0), turned into its percentile rank
+    over the joints of ``pos`` as :func:`ranking.joint_uncertainty` turns the model's signals.
+    Reads the truth: for the diagnostic ORACLES only."""
+    from .adapt import _sim
+    from .ranking import _percentile_rank
+    R, vis = pool.Rtrue[pos], pool.vis[pos]
+    err = 1.0 - _sim(np.nansum(R ** 2, axis=2), pool.area[pos], pool.sigmas)
+    err[~np.isfinite(R).all(axis=2)] = 1.0
+    err[vis <= 0] = 0.0
+    return _percentile_rank(err.ravel()).reshape(err.shape)
 
 
 def select(strategy: str, pool: Pool, cand: np.ndarray, n: int, rng) -> np.ndarray:
@@ -153,10 +174,14 @@ def select(strategy: str, pool: Pool, cand: np.ndarray, n: int, rng) -> np.ndarr
         return np.array(picks)
     if strategy == "typical":      # first rounds in ROUNDS only
         return cand[typical_picks(pool.feats[cand], n, rng)]
+    oracle = strategy in ORACLES
+    if oracle:
+        strategy = strategy.removeprefix("oracle-")
     weights = {"uncertainty": RankWeights(novelty=0.0, same_clip_decay=0.0, dedup_window=-1),
                "novelty": RankWeights(uncertainty=0.0, same_clip_decay=0.0),
                "combined": RankWeights(seed=int(rng.integers(1 << 30)))}[strategy]
-    q = RankingQueue(pool.feats[cand], pool.unc[cand], pool.media[cand], pool.index[cand], weights)
+    unc = frame_uncertainty(true_doubt(pool, cand)) if oracle else pool.unc[cand]
+    q = RankingQueue(pool.feats[cand], unc, pool.media[cand], pool.index[cand], weights)
     return cand[[p[0] for p in q.select(n)]]
 
 
@@ -593,6 +618,9 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
         say(f"network tuning at N={budget}, {strat}, paired by held-out split and selection seed: "
             + "; ".join(paired_ratio(np.array(rows[strat], float)[:, 3], np.array(rows[base], float)[:, 3], base)
                         for base in ("random", "uniform")))
+    if any(s in ORACLES for s in strategies):
+        say("network tuning: the oracle-* rows read the exact truth (the queue's doubt replaced by each joint's "
+            "true error): a bound on what better doubt could do for selection, not picks a team can make")
     say(f"network tuning: a tuning with its held-out check took {np.median(t_fit):.1f} s (median)")
     need = 0.8 * min(rnd[3], uni[3])
     ceiling = float(np.mean(pool_tuned))

@@ -444,7 +444,8 @@ def build_parser() -> argparse.ArgumentParser:
                         "about 35 s per strategy and held-out split, one per round for those in rounds)")
     s.add_argument("--tuning-strategies", default=None, metavar="LIST",
                    help="queue --tuning: which strategies to tune on, e.g. combined,4-round (default all; "
-                        "random and uniform always, the ratios need them)")
+                        "random and uniform always, the ratios need them; the oracle-* ones read the exact truth, "
+                        "a diagnostic)")
     s.add_argument("--cases", type=int, default=None, help="crash: kills (default 50); fuzz: COCO files (10000)")
     s.set_defaults(fn=cmd_bench)
     return ap

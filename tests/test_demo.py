@@ -117,6 +117,8 @@ def test_bench_queue_tuning_part_runs_on_the_tiny_scenario(demo):
     assert "combined-then-badge (4 picks from the combined queue, then BADGE in 1 round of 4," in text
     assert "2-round, paired by held-out split and selection seed: / random " in text
     assert "badge, paired by held-out split and selection seed: / random " in text
+    assert "oracle-combined, paired by held-out split and selection seed: / random " in text
+    assert "the oracle-* rows read the exact truth" in text
     t = table["tuning"]
     assert set(t) == {"random", "uniform", *ROUNDS, *TUNING_ONLY, "pool_ceiling"}
     for strat in ("random", "uniform", *ROUNDS, *TUNING_ONLY):
@@ -216,3 +218,61 @@ def test_kmeanspp_seeding_draws_in_proportion_to_the_squared_distance():
         picks = kmeanspp_seeding(dup, 5, np.random.default_rng(s))
         assert sorted(picks.tolist()) == [0, 1, 2, 3, 4]       # never one of the copies 5-7
     assert len(kmeanspp_seeding(dup, 8, np.random.default_rng(0))) == 8     # duplicates once nothing else is left
+
+
+def test_oracle_doubt_orders_joints_by_their_coco_oks_similarity_to_the_truth():
+    """The bench's diagnostic oracles rank on :func:`true_doubt`: one minus each keypoint's OKS
+    similarity to the exact truth. Checked against pycocotools (COCOeval.computeOks, the COCO
+    keypoint evaluation's reference code): with one labelled keypoint per frame, a frame's OKS
+    is that keypoint's similarity, so the doubt must order the frames as that OKS does,
+    reversed. A labelled keypoint the model did not propose is the most doubtful; an
+    unlabelled one, however far off, counts nothing."""
+    pytest.importorskip("pycocotools")
+    from pycocotools.coco import COCO
+    from pycocotools.cocoeval import COCOeval
+    from kinemark.core.bench_queue import Pool, true_doubt
+    K, sig = COCO17.num_keypoints, COCO17.sigma_array
+    rng = np.random.default_rng(3)
+    n = 7
+    joint = rng.integers(0, K, n)                       # the one labelled keypoint per frame
+    R = np.full((n, K, 2), np.nan)
+    R[np.arange(n), joint] = rng.normal(scale=12.0, size=(n, 2))   # px off the truth
+    R[6, joint[6]] = np.nan                             # labelled, not proposed
+    other = (joint[0] + 1) % K
+    R[0, other] = (500.0, 500.0)                        # far off but not labelled
+    vis = np.zeros((n, K))
+    vis[np.arange(n), joint] = 2
+    area = rng.uniform(2000, 9000, n)
+    z = np.zeros(n)
+    pool = Pool(np.arange(n), z, z, z, z, z, z, z, z, R, R, area, vis, z, z, {}, sig)
+    doubt = true_doubt(pool, np.arange(n))
+    assert doubt.shape == (n, K) and doubt[0, other] == doubt.min()
+    assert doubt[6, joint[6]] == doubt.max()
+    truth = np.zeros((K, 3))
+    cats = [{"id": 1, "name": "person", "keypoints": list(COCO17.keypoints)}]
+    coco_oks = []
+    for i in range(6):
+        g, d = truth.copy(), truth.copy()
+        g[:, :2] = 200.0
+        g[joint[i], 2] = 2
+        d[:, :2] = 200.0
+        d[joint[i], :2] += R[i, joint[i]]               # the proposal's offset from the truth
+        gt = COCO()
+        gt.dataset = {"images": [{"id": 1, "width": 400, "height": 400, "file_name": "x.png"}],
+                      "annotations": [{"id": 1, "image_id": 1, "category_id": 1, "keypoints": g.ravel().tolist(),
+                                       "num_keypoints": 1, "bbox": [100, 100, 200, 200], "area": float(area[i]),
+                                       "iscrowd": 0}], "categories": cats}
+        _quiet(gt.createIndex)
+        dt = _quiet(gt.loadRes, [{"image_id": 1, "category_id": 1, "keypoints": d.ravel().tolist(), "score": 1.0}])
+        ev = COCOeval(gt, dt, iouType="keypoints")
+        _quiet(ev.evaluate)
+        coco_oks.append(float(ev.ious[(1, 1)][0, 0]))
+    labelled = doubt[np.arange(6), joint[:6]]
+    assert np.array_equal(np.argsort(labelled), np.argsort(-np.array(coco_oks)))
+
+
+def _quiet(fn, *args):
+    import contextlib
+    import io
+    with contextlib.redirect_stdout(io.StringIO()):
+        return fn(*args)
