@@ -571,7 +571,8 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
                                     summary["heldout_moves_tuned"], nested, own))
         say(f"  held out {'+'.join(held)}: {done} of {len(splits) * len(seeds) * len(rows)} "
             f"tunings done, {time.perf_counter() - t0:.0f} s so far")
-    say(f"{'strategy':<12}| raw   correction  tuned  in use  (tuning kept)   [joints to move per frame, "
+    width = max(12, max(map(len, strategies)) + 1)      # the names line up with their figures
+    say(f"{'strategy':<{width}}| raw   correction  tuned  in use  (tuning kept)   [joints to move per frame, "
         f"held-out participants, N={budget}]")
     out = {}
     for strat in strategies:
@@ -579,7 +580,7 @@ def _tuning_table(root, pool: Pool, splits, seeds, budget: int, sig, say, strate
         out[strat] = r[:, :6].mean(axis=0)
         why = [f"{int((r[:, 5] == k).sum())} as no better than {what}" for k, what in
                ((1, "the raw model"), (2, "the correction")) if (r[:, 5] == k).any()]
-        say(f"{strat:<12}| {r[:, 0].mean():4.2f}  {r[:, 1].mean():6.2f}  {r[:, 2].mean():9.2f}  "
+        say(f"{strat:<{width}}| {r[:, 0].mean():4.2f}  {r[:, 1].mean():6.2f}  {r[:, 2].mean():9.2f}  "
             f"{r[:, 3].mean():5.2f}   {int(r[:, 4].sum())} of {len(r)}"
             + (f" (refused {', '.join(why)}, by the check on the labelled participants)" if why else ""))
     # the held-out check's choice between the tuning and a correction, against the held-out
