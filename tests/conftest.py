@@ -1,6 +1,8 @@
 """Shared fixtures. Test media are written here with OpenCV's own encoder."""
 from __future__ import annotations
 
+import contextlib
+import io
 import os
 from pathlib import Path
 
@@ -9,6 +11,12 @@ import numpy as np
 import pytest
 
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+
+
+def quiet(fn, *a, **k):
+    """``fn(*a, **k)`` with its printing to stdout swallowed (pycocotools prints as it works)."""
+    with contextlib.redirect_stdout(io.StringIO()):
+        return fn(*a, **k)
 
 
 def write_video(path: Path, n_frames: int = 40, size=(160, 120), fps: float = 10.0,

@@ -4,8 +4,6 @@ COCO OKS (cocodataset.org, keypoint evaluation; pycocotools COCOeval.computeOks)
 OKS = sum_i exp(-d_i² / (2 s² k_i²)) δ(v_i > 0) / sum_i δ(v_i > 0), with k_i = 2 σ_i,
 s² the object area, and σ the COCO sigmas (nose .026, shoulders .079, hips .107).
 """
-import contextlib
-import io
 import json
 import math
 import os
@@ -15,6 +13,7 @@ import sys
 import numpy as np
 import pytest
 
+from conftest import quiet
 from kinemark.core import agreement, ops, review
 from kinemark.core.cli import main
 from kinemark.core.errors import KinemarkError
@@ -23,11 +22,6 @@ from kinemark.core.skeleton import COCO17
 from test_review import H, _frames, _pose, team  # noqa: F401
 
 I = {n: i for i, n in enumerate(COCO17.keypoints)}
-
-
-def _quiet(fn, *a, **k):
-    with contextlib.redirect_stdout(io.StringIO()):
-        return fn(*a, **k)
 
 
 def _first_and_second():
@@ -94,10 +88,10 @@ def test_hand_worked_example_agrees_with_pycocotools(project, team):
                   "annotations": [{"id": 1, "image_id": 1, "category_id": 1, "keypoints": first.ravel().tolist(),
                                    "num_keypoints": 5, "bbox": [0, 0, 100, 100], "area": 10000.0, "iscrowd": 0}],
                   "categories": [{"id": 1, "name": "person", "keypoints": list(COCO17.keypoints)}]}
-    _quiet(gt.createIndex)
-    dt = _quiet(gt.loadRes, [{"image_id": 1, "category_id": 1, "keypoints": second.ravel().tolist(), "score": 1.0}])
+    quiet(gt.createIndex)
+    dt = quiet(gt.loadRes, [{"image_id": 1, "category_id": 1, "keypoints": second.ravel().tolist(), "score": 1.0}])
     ev = COCOeval(gt, dt, iouType="keypoints")
-    _quiet(ev.evaluate)
+    quiet(ev.evaluate)
     assert float(ev.ious[(1, 1)][0, 0]) == pytest.approx(HAND_OKS, abs=1e-6)
 
 

@@ -1,12 +1,10 @@
 """COCO keypoint export/import, checked with the reference tools (pycocotools)."""
-import contextlib
-import io
 import json
 
 import numpy as np
 import pytest
 
-from conftest import write_image, write_video
+from conftest import quiet, write_image, write_video
 from kinemark.core import ops
 from kinemark.core.errors import KinemarkError
 from kinemark.core.media import Sampling
@@ -16,14 +14,9 @@ from kinemark.core.project import Project
 from kinemark.core.skeleton import COCO17
 
 
-def _quiet(fn, *a, **k):
-    with contextlib.redirect_stdout(io.StringIO()):
-        return fn(*a, **k)
-
-
 def _coco(path):
     from pycocotools.coco import COCO
-    return _quiet(COCO, str(path))
+    return quiet(COCO, str(path))
 
 
 def _labelled(project, tmp_path, n=12, seed=0):
@@ -43,9 +36,9 @@ def _labelled(project, tmp_path, n=12, seed=0):
 def _evaluate(gt_path, results):
     from pycocotools.cocoeval import COCOeval
     gt = _coco(gt_path)
-    dt = _quiet(gt.loadRes, results)
+    dt = quiet(gt.loadRes, results)
     ev = COCOeval(gt, dt, iouType="keypoints")
-    _quiet(ev.evaluate); _quiet(ev.accumulate); _quiet(ev.summarize)
+    quiet(ev.evaluate); quiet(ev.accumulate); quiet(ev.summarize)
     return ev.stats[0]
 
 

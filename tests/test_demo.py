@@ -4,6 +4,7 @@ import json
 import numpy as np
 import pytest
 
+from conftest import quiet
 from kinemark.core.demo import run_demo, simulate_annotator
 from kinemark.core.metrics import joints_needing_move
 from kinemark.core.skeleton import COCO17
@@ -262,17 +263,10 @@ def test_oracle_doubt_orders_joints_by_their_coco_oks_similarity_to_the_truth():
                       "annotations": [{"id": 1, "image_id": 1, "category_id": 1, "keypoints": g.ravel().tolist(),
                                        "num_keypoints": 1, "bbox": [100, 100, 200, 200], "area": float(area[i]),
                                        "iscrowd": 0}], "categories": cats}
-        _quiet(gt.createIndex)
-        dt = _quiet(gt.loadRes, [{"image_id": 1, "category_id": 1, "keypoints": d.ravel().tolist(), "score": 1.0}])
+        quiet(gt.createIndex)
+        dt = quiet(gt.loadRes, [{"image_id": 1, "category_id": 1, "keypoints": d.ravel().tolist(), "score": 1.0}])
         ev = COCOeval(gt, dt, iouType="keypoints")
-        _quiet(ev.evaluate)
+        quiet(ev.evaluate)
         coco_oks.append(float(ev.ious[(1, 1)][0, 0]))
     labelled = doubt[np.arange(6), joint[:6]]
     assert np.array_equal(np.argsort(labelled), np.argsort(-np.array(coco_oks)))
-
-
-def _quiet(fn, *args):
-    import contextlib
-    import io
-    with contextlib.redirect_stdout(io.StringIO()):
-        return fn(*args)
