@@ -80,7 +80,7 @@ class Pool:
     kps: np.ndarray        # the raw proposals (x, y, v) and their per-joint doubt, for re-ranking
     conf: np.ndarray
     sig: dict
-    sigmas: np.ndarray | None = None   # the skeleton's OKS sigmas (for :func:`true_doubt`)
+    sigmas: np.ndarray     # the skeleton's OKS sigmas (for :func:`true_doubt`)
 
 
 def _residual(prop_xy, target, conf, region, pv):
