@@ -244,8 +244,9 @@ def test_oracle_doubt_orders_joints_by_their_coco_oks_similarity_to_the_truth():
     vis = np.zeros((n, K))
     vis[np.arange(n), joint] = 2
     area = rng.uniform(2000, 9000, n)
-    z = np.zeros(n)
-    pool = Pool(np.arange(n), z, z, z, z, z, z, z, z, R, R, area, vis, z, z, {}, sig)
+    z = np.zeros(n)                                     # true_doubt reads Rtrue, area, vis and sigmas only
+    pool = Pool(frame_ids=np.arange(n), media=z, index=z, group=z, raw_oks=z, unc=z, feats=z, thumbs=z, X=z,
+                Rtrue=R, Rlab=R, area=area, vis=vis, kps=z, conf=z, sig={}, sigmas=sig)
     doubt = true_doubt(pool, np.arange(n))
     assert doubt.shape == (n, K) and doubt[0, other] == doubt.min()
     assert doubt[6, joint[6]] == doubt.max()
